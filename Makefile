@@ -1,0 +1,37 @@
+# cardiosieve: `make demo` runs the nightly job on the bundled sample lake; `make test` runs the tests.
+SHELL := /bin/bash
+.SHELLFLAGS := -o pipefail -c
+PYTHON ?= $(shell command -v python3.11 || command -v python3)
+VENV := .venv
+BIN := $(VENV)/bin
+STAMP := $(VENV)/.installed
+DEMO_OUT ?= out/demo
+
+.PHONY: install demo test bench clean sample-lake
+
+install: $(STAMP)
+
+$(STAMP): pyproject.toml
+	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip 2>&1 | { grep -v "^WARNING: Location" || true; }
+	$(BIN)/python -m pip install --quiet -e '.[test,scheduler]' 2>&1 | { grep -v "^WARNING: Location" || true; }
+	$(BIN)/python -c "import pandas, pyarrow, scipy, sqlalchemy, pytest, duckdb"
+	touch $(STAMP)
+
+demo: install
+	$(BIN)/cardiosieve run --lake sample_lake --config sample_lake/site.toml --out $(DEMO_OUT) \
+		--start 2026-11-29T00:00:00Z --end 2026-11-30T00:00:00Z
+	@if $(BIN)/cardiosieve --help | grep -q " show "; then \
+		$(BIN)/cardiosieve show --out $(DEMO_OUT) --limit 15; fi
+
+test: install
+	$(BIN)/python -m pytest
+
+bench: install
+	$(BIN)/python bench/align.py
+
+sample-lake: install
+	$(BIN)/python -m pipeline.samplegen --out sample_lake
+
+clean:
+	rm -rf out .pytest_cache

@@ -1,0 +1,148 @@
+"""cardiosieve command line.
+
+Only the standard library is imported at start-up, so `cardiosieve --help` answers at once and
+each command imports what it uses. Exit codes: 0 success; 2 bad input or configuration, with a
+one-line reason; 1 internal error. Output is counts only: it lands in scheduler logs, so it never
+carries a patient identifier or a value from a row.
+"""
+from __future__ import annotations
+
+import argparse
+import sys
+
+CAUTION = ("cardiosieve is a screening aid for human review, not a diagnosis: every item must be "
+           "reviewed by a qualified clinician under local protocols.")
+
+EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT = 0, 1, 2
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(
+        prog="cardiosieve",
+        description="Screen ECG measurements against laboratory results and write a prioritised "
+                    "worklist for clinical review. " + CAUTION,
+        epilog="Exit codes: 0 success, 2 bad input or configuration, 1 internal error.")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND")
+
+    run = sub.add_parser("run", help="screen the ECGs acquired in [start, end) and write the worklist",
+                         description="Screen the ECGs acquired in [--start, --end) (UTC; a bound without "
+                                     "offset is read as UTC) and write OUT/worklist.parquet, "
+                                     "OUT/aligned.parquet, OUT/rejects.parquet and OUT/run_summary.json.")
+    _lake_args(run)
+    run.add_argument("--out", required=True, help="output folder")
+    run.add_argument("--start", required=True, help="first instant screened, ISO 8601 (e.g. 2026-11-29)")
+    run.add_argument("--end", required=True, help="end of the interval, excluded, ISO 8601 (e.g. 2026-11-30)")
+    run.add_argument("--db", help="SQLAlchemy URL of the worklist database (default: sqlite at OUT/worklist.sqlite)")
+    run.set_defaults(handler=_cmd_run)
+
+    val = sub.add_parser("validate", help="check the lake against the contract and report rejects",
+                         description="Read the lake (or only [--start, --end)) against the data contract; "
+                                     "print counts of accepted and rejected rows by reason.")
+    _lake_args(val)
+    val.add_argument("--start", help="limit to rows timed in [start, end)")
+    val.add_argument("--end", help="end of that interval, excluded")
+    val.add_argument("--out", help="also write OUT/rejects.parquet")
+    val.set_defaults(handler=_cmd_validate)
+
+    try:
+        from pipeline import commands        # review, yield, export, show (stdlib-only at import)
+    except ImportError:
+        commands = None
+    if commands is not None:
+        commands.register(sub)
+    return p
+
+
+def _lake_args(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--lake", required=True, help="lake folder holding ecg/, ecg_lead/, lab/, patient/ "
+                                                 "and optionally medication/")
+    p.add_argument("--config", help="site configuration (TOML); see docs/configuration.md")
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if getattr(args, "handler", None) is None:
+        parser.print_help()
+        return EXIT_BAD_INPUT
+    try:
+        return args.handler(args) or EXIT_OK
+    except Exception as exc:          # classify; never print row values
+        if _is_bad_input(exc):
+            print(f"cardiosieve: error: {exc}", file=sys.stderr)
+            return EXIT_BAD_INPUT
+        print(f"cardiosieve: internal error ({type(exc).__name__}); rerun with "
+              f"CARDIOSIEVE_DEBUG=1 for the traceback", file=sys.stderr)
+        import os
+        if os.environ.get("CARDIOSIEVE_DEBUG"):
+            raise
+        return EXIT_INTERNAL
+
+
+def _is_bad_input(exc: Exception) -> bool:
+    names = {"ConfigError", "ContractError", "LakeError", "RunError", "QualityGateError", "ReviewError"}
+    return any(cls.__name__ in names for cls in type(exc).__mro__)
+
+
+def _cmd_run(args) -> int:
+    from pipeline.run import run_interval
+    summary = run_interval(args.lake, args.out, args.start, args.end, config=args.config, db=args.db)
+    print(format_summary(summary))
+    return EXIT_OK
+
+
+def _cmd_validate(args) -> int:
+    from pipeline.validate import validate_lake
+    result = validate_lake(args.lake, config=args.config, start=args.start, end=args.end, out=args.out)
+    print(format_validation(result))
+    return EXIT_OK
+
+
+def format_summary(s: dict) -> str:
+    """The run summary for a person and a scheduler log: counts only."""
+    t = s["tables"]
+    lines = [f"cardiosieve run [{s['interval'][0]}, {s['interval'][1]})",
+             f"  ECGs in interval: {t['ecg']['rows_in']}  screened: {t['ecg']['accepted']}  "
+             f"rejected: {t['ecg']['rejected']}"]
+    ctx = ", ".join(f"{name} {t[name]['accepted']}+{t[name]['rejected']} rejected"
+                    for name in ("ecg_lead", "lab", "patient", "ecg_history", "medication"))
+    lines.append(f"  context rows read (accepted+rejected): {ctx}")
+    if s.get("rejects_by_reason"):
+        lines.append("  rejected rows by reason:")
+        lines += [f"    {k:<38} {v}" for k, v in sorted(s["rejects_by_reason"].items())]
+    else:
+        lines.append("  rejected rows: none")
+    if "quality" in s:
+        q = s["quality"]
+        lines.append(f"  quality checks: {q.get('failed', 0)} failed of {q.get('checks', 0)} "
+                     f"({q.get('warnings', 0)} warnings); report {q.get('report', '')}")
+    if "findings" in s:
+        lines.append("  findings by screen and tier:")
+        for screen, tiers in sorted(s["findings"].items()):
+            tier_txt = "  ".join(f"tier {k}: {v}" for k, v in sorted(tiers.items()))
+            lines.append(f"    {screen:<14} {tier_txt}")
+    if "worklist" in s:
+        w = s["worklist"]
+        lines.append("  worklist items by screen: " +
+                     ", ".join(f"{k} {v}" for k, v in sorted(w.get("by_screen", {}).items())))
+        lines.append(f"  database: {w.get('db_counts', {})}")
+    for name, path in s.get("outputs", {}).items():
+        lines.append(f"  wrote {name}: {path}")
+    lines.append("  " + CAUTION)
+    return "\n".join(lines)
+
+
+def format_validation(r: dict) -> str:
+    lines = [f"cardiosieve validate {r['scope']}"]
+    for name, t in r["tables"].items():
+        lines.append(f"  {name:<11} rows {t['rows_in']:>9}  accepted {t['accepted']:>9}  rejected {t['rejected']:>6}")
+    if r["rejects_by_reason"]:
+        lines.append("  rejected rows by reason:")
+        lines += [f"    {k:<38} {v}" for k, v in sorted(r["rejects_by_reason"].items())]
+    if r.get("rejects_path"):
+        lines.append(f"  wrote rejects: {r['rejects_path']}")
+    return "\n".join(lines)
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,94 @@
+"""Reading the lake: partition pruning, schema groups, corrupt files, duplicates, reconciliation."""
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+from pipeline import contract as c
+from pipeline.config import settings_from_dict
+from pipeline.load import LakeError, read_table, table_files
+from pipeline.run import stage_load
+from tests.lake_builders import ecg_row, lab_row, patient_row, write_lake, write_table
+
+DEFAULT = settings_from_dict({})
+NIGHT = (pd.Timestamp("2026-11-29T00:00Z"), pd.Timestamp("2026-11-30T00:00Z"))
+
+
+def test_only_partitions_inside_the_window_are_listed(tmp_path):
+    days = pd.date_range("2020-01-01", "2026-11-30", freq="7D", tz="UTC")
+    write_table(tmp_path, "ecg", [ecg_row(f"E{i}", acquired_at=str(d)) for i, d in enumerate(days)], "acquired_at")
+    files = table_files(tmp_path, c.ECG, "2026-11-20", "2026-11-30")
+    assert [f.parent.name for f in files] == sorted(f"date={d:%Y-%m-%d}" for d in days if d >= pd.Timestamp("2026-11-20", tz="UTC"))
+
+
+def test_night_read_returns_only_the_interval_and_reconciles(tmp_path):
+    write_table(tmp_path, "ecg", [ecg_row("before", acquired_at="2026-11-28T23:59:59Z"),
+                                  ecg_row("first", acquired_at="2026-11-29T00:00:00Z"),
+                                  ecg_row("bad", acquired_at="2026-11-29T05:00:00Z", qt_ms=5000.0),
+                                  ecg_row("last", acquired_at="2026-11-29T23:59:59Z"),
+                                  ecg_row("after", acquired_at="2026-11-30T00:00:00Z")], "acquired_at")
+    got = read_table(tmp_path, c.ECG, DEFAULT, scope="night", window=NIGHT)
+    assert sorted(got.clean["ecg_id"]) == ["first", "last"]          # half-open [start, end)
+    assert got.rejects["row_key"].tolist() == ["bad"] and got.rows_in == 3
+
+
+def test_a_file_of_naive_timestamps_is_not_silently_read_as_utc(tmp_path):
+    write_table(tmp_path, "lab", [lab_row("aware")], "collected_at")
+    naive = pd.DataFrame([lab_row("naive")])
+    naive["collected_at"] = naive["collected_at"].dt.tz_localize(None)
+    naive["resulted_at"] = naive["resulted_at"].dt.tz_localize(None)
+    write_table(tmp_path, "lab", naive, "collected_at", file_name="part-legacy.parquet")
+    got = read_table(tmp_path, c.LAB, DEFAULT, scope="window", window=NIGHT)
+    assert got.clean["result_id"].tolist() == ["aware"]
+    assert got.rejects[["row_key", "reason"]].values.tolist() == [["naive", "naive_timestamp"]]
+
+
+def test_bad_timestamp_rows_count_once_in_the_night_of_their_partition(tmp_path):
+    bad = pd.DataFrame([lab_row("x", collected_at="2026-11-28T12:00Z")])
+    bad["collected_at"] = "not a time"
+    write_table(tmp_path, "lab", pd.DataFrame([lab_row("ok28", collected_at="2026-11-28T12:00Z")]), "collected_at")
+    (tmp_path / "lab" / "date=2026-11-28").mkdir(exist_ok=True)
+    pq.write_table(pa.Table.from_pandas(bad, preserve_index=False), tmp_path / "lab" / "date=2026-11-28" / "p2.parquet")
+    # The night of 29 Nov reads the 28th's partition as slack but does not count its bad row.
+    assert read_table(tmp_path, c.LAB, DEFAULT, scope="window", window=NIGHT).rejects.empty
+    day28 = (pd.Timestamp("2026-11-28T00:00Z"), pd.Timestamp("2026-11-29T00:00Z"))
+    assert read_table(tmp_path, c.LAB, DEFAULT, scope="window", window=day28).rejects["reason"].tolist() == ["unparseable_timestamp"]
+
+
+def test_duplicate_ids_across_files_identical_keeps_one_conflicting_rejects_all(tmp_path):
+    write_table(tmp_path, "ecg", [ecg_row("same"), ecg_row("clash")], "acquired_at")
+    write_table(tmp_path, "ecg", [ecg_row("same"), ecg_row("clash", qrs_ms=150.0)], "acquired_at", file_name="part-1.parquet")
+    got = read_table(tmp_path, c.ECG, DEFAULT, scope="night", window=NIGHT)
+    assert got.clean["ecg_id"].tolist() == ["same"]
+    assert sorted(got.rejects["row_key"]) == ["clash", "clash", "same"]
+    assert set(got.rejects["reason"]) == {"duplicate_id"} and got.rows_in == 4
+
+
+def test_corrupt_parquet_file_is_an_error_naming_the_file(tmp_path):
+    write_table(tmp_path, "ecg", [ecg_row()], "acquired_at")
+    broken = tmp_path / "ecg" / "date=2026-11-29" / "part-9.parquet"
+    broken.write_bytes(b"this is not parquet")
+    with pytest.raises(LakeError, match="part-9.parquet"):
+        read_table(tmp_path, c.ECG, DEFAULT, scope="night", window=NIGHT)
+
+
+def test_missing_table_folder_is_an_error_but_medication_is_optional(tmp_path):
+    with pytest.raises(LakeError, match="ecg/"):
+        read_table(tmp_path, c.ECG, DEFAULT, scope="night", window=NIGHT)
+    assert read_table(tmp_path, c.MEDICATION, DEFAULT, scope="window", window=NIGHT).rows_in == 0
+
+
+def test_stage_load_reads_only_the_nights_patients_and_reconciles(tmp_path):
+    lake = write_lake(tmp_path / "lake",
+                      ecg=[ecg_row("E1", "P1"), ecg_row("Eold", "P1", "2026-06-01T10:00Z"),
+                           ecg_row("Eother", "P9", "2026-06-01T10:00Z")],
+                      labs=[lab_row("R1", "P1"), lab_row("R9", "P9"),
+                            lab_row("Na", "P1", analyte="2951-2", value=140.0)],   # sodium: not read
+                      patients=[patient_row("P1"), patient_row("P9")])
+    got = stage_load(lake, tmp_path / "out", *NIGHT)
+    t = got["tables"]
+    assert t["ecg"]["accepted"] == 1 and t["ecg_history"]["accepted"] == 1
+    assert t["lab"]["accepted"] == 1 and t["patient"]["accepted"] == 1
+    assert t["ecg_lead"]["accepted"] == 24                 # the night's ECG and its prior, 12 leads each
+    for counts in t.values():
+        assert counts["rows_in"] == counts["accepted"] + counts["rejected"]
