@@ -102,9 +102,8 @@ def _previous_value(labs: pd.DataFrame, lookback: pd.Timedelta) -> pd.DataFrame:
     prev_at = s["collected_at"].shift(1).where(same)
     prev_value = s["value"].shift(1).where(same)
     recent = (s["collected_at"] - prev_at) <= lookback
-    return pd.DataFrame({"result_id": s["result_id"].to_numpy(),
-                         "prev_value": prev_value.where(recent).to_numpy(),
-                         "prev_collected_at": prev_at.where(recent).to_numpy()})
+    return pd.DataFrame({"result_id": s["result_id"], "prev_value": prev_value.where(recent),
+                         "prev_collected_at": prev_at.where(recent)}).reset_index(drop=True)
 
 
 def prior_ecg(anchors: pd.DataFrame, history: pd.DataFrame, min_gap: pd.Timedelta,

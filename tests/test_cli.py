@@ -1,0 +1,67 @@
+"""The command line: exit codes, help, and output that holds counts only."""
+import subprocess
+import sys
+
+import pytest
+
+from pipeline.cli import main
+from tests.lake_builders import ecg_row, lab_row, patient_row, write_lake
+
+ARGS = ["--start", "2026-11-29", "--end", "2026-11-30"]
+
+
+def test_help_imports_no_heavy_library():
+    code = ("import sys, pipeline.cli as c; c.build_parser().format_help(); "
+            "print(sorted(m for m in ('pandas', 'pyarrow', 'numpy', 'sqlalchemy', 'airflow', 'great_expectations') if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    assert out.strip() == "[]"
+
+
+def test_run_succeeds_and_prints_counts_not_identifiers(tmp_path, capsys):
+    lake = write_lake(tmp_path / "lake", ecg=[ecg_row("ECG-SECRET-1", "PAT-SECRET-1")],
+                      labs=[lab_row("R1", "PAT-SECRET-1", value=4.1)], patients=[patient_row("PAT-SECRET-1")])
+    assert main(["run", "--lake", str(lake), "--out", str(tmp_path / "out"), *ARGS]) == 0
+    out = capsys.readouterr().out
+    assert "screened: 1" in out and "SECRET" not in out
+    assert (tmp_path / "out" / "rejects.parquet").exists()
+
+
+@pytest.mark.parametrize("argv, message", [
+    (["run", "--lake", "{lake}", "--out", "{out}", "--start", "2026-11-30", "--end", "2026-11-29"], "before"),
+    (["run", "--lake", "{lake}", "--out", "{out}", "--start", "soon", "--end", "2026-11-29"], "ISO 8601"),
+    (["run", "--lake", "{tmp}/nowhere", "--out", "{out}", *ARGS], "ecg/"),
+    (["run", "--lake", "{lake}", "--out", "{out}", "--config", "{tmp}/missing.toml", *ARGS], "config file not found"),
+])
+def test_bad_input_exits_2_with_a_one_line_reason(tmp_path, capsys, argv, message):
+    lake = write_lake(tmp_path / "lake")
+    argv = [a.format(lake=lake, out=tmp_path / "out", tmp=tmp_path) for a in argv]
+    assert main(argv) == 2
+    err = capsys.readouterr().err.strip()
+    assert message in err and len(err.splitlines()) == 1
+
+
+def test_corrupt_file_exits_2_naming_the_file(tmp_path, capsys):
+    lake = write_lake(tmp_path / "lake")
+    (lake / "lab" / "date=2026-11-29" / "part-bad.parquet").write_bytes(b"PAR1 broken")
+    assert main(["run", "--lake", str(lake), "--out", str(tmp_path / "out"), *ARGS]) == 2
+    assert "part-bad.parquet" in capsys.readouterr().err
+
+
+def test_internal_error_exits_1_without_a_traceback(tmp_path, capsys, monkeypatch):
+    import pipeline.run
+    monkeypatch.setattr(pipeline.run, "run_interval", lambda *a, **k: 1 / 0)
+    assert main(["run", "--lake", "x", "--out", str(tmp_path), *ARGS]) == 1
+    err = capsys.readouterr().err
+    assert "internal error (ZeroDivisionError)" in err and "Traceback" not in err
+
+
+def test_validate_reports_rejects_over_the_whole_lake(tmp_path, capsys):
+    lake = write_lake(tmp_path / "lake", ecg=[ecg_row("a"), ecg_row("b", qrs_ms=0.0)])
+    assert main(["validate", "--lake", str(lake), "--out", str(tmp_path / "v")]) == 0
+    out = capsys.readouterr().out
+    assert "ecg:impossible_value" in out and (tmp_path / "v" / "rejects.parquet").exists()
+
+
+def test_no_command_prints_help_and_exits_2(capsys):
+    assert main([]) == 2
+    assert "usage: cardiosieve" in capsys.readouterr().out
