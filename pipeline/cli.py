@@ -101,9 +101,11 @@ def _cmd_validate(args) -> int:
 def format_summary(s: dict) -> str:
     """The run summary for a person and a scheduler log: counts only."""
     t = s["tables"]
+    e = t["ecg"]
+    screened = e.get("screened", e["accepted"])
     lines = [f"cardiosieve run [{s['interval'][0]}, {s['interval'][1]})",
-             f"  ECGs in interval: {t['ecg']['rows_in']}  screened: {t['ecg']['accepted']}  "
-             f"rejected: {t['ecg']['rejected']}"]
+             f"  ECGs in interval: {e['rows_in']}  screened: {screened}  rejected: {e['rows_in'] - screened} "
+             f"(contract {e['rejected']}, quality {e['accepted'] - screened})"]
     ctx = ", ".join(f"{name} {t[name]['accepted']}+{t[name]['rejected']} rejected"
                     for name in ("ecg_lead", "lab", "patient", "ecg_history", "medication"))
     lines.append(f"  context rows read (accepted+rejected): {ctx}")

@@ -18,6 +18,9 @@ from pipeline import contract as c
 from pipeline.config import Settings, load_settings
 
 STAGE_DIR = "_stage"
+# What the prior-ECG lookup needs of the patients' earlier ECGs (pipeline/align.py PRIOR_COLUMNS).
+CHECKED_TABLES = ("ecg", "ecg_lead", "lab", "patient", "medication")   # what the quality gate sees
+HISTORY_COLUMNS = ["ecg_id", "patient_id", "acquired_at", "heart_rate_bpm", "rr_ms", "pr_ms", "qrs_ms", "qt_ms"]
 
 
 class RunError(ValueError):
@@ -77,10 +80,12 @@ def stage_load(lake, out, start, end, config=None, settings: Settings | None = N
     w = settings.windows
     d = stage_dir(out, lo, hi)
 
+    for stale in [*d.glob("*.checked.parquet"), *d.glob("rejects_*.parquet"), d / "prior_lead.parquet"]:
+        stale.unlink(missing_ok=True)                      # derived from an earlier load
     night = read_table(lake, c.ECG, settings, scope="night", window=(lo, hi))
     pids = night.clean["patient_id"].unique().tolist()
     keep = {"patient_id": pids}
-    history = read_table(lake, c.ECG, settings, scope="window", keep=keep,
+    history = read_table(lake, c.ECG, settings, scope="window", keep=keep, columns=HISTORY_COLUMNS,
                          window=(lo - pd.Timedelta(days=w["prior_ecg_max_days"]), lo))
     lab_codes = sorted(settings.analyte_of_code())
     lab = read_table(lake, c.LAB, settings, scope="window", keep={**keep, "analyte": lab_codes},
@@ -90,32 +95,60 @@ def stage_load(lake, out, start, end, config=None, settings: Settings | None = N
     medication = read_table(lake, c.MEDICATION, settings, scope="window", keep=keep,
                             window=(lo - pd.Timedelta(hours=w["medication_h"]), hi))
     ecg_history = pd.concat([history.clean, night.clean], ignore_index=True)
-    lead_days = set(ecg_history["acquired_at"].dt.strftime("%Y-%m-%d").unique())
-    leads = read_table(lake, c.ECG_LEAD, settings, scope="window", keep={"ecg_id": ecg_history["ecg_id"].tolist()},
-                       days=_with_slack(lead_days))
-    night_ids = set(night.clean["ecg_id"])
-    lead_rejects = leads.rejects.copy()
-    lead_rejects.loc[lead_rejects["row_key"].str.split("|").str[0].isin(night_ids), "scope"] = "night"
 
-    loaded = {"ecg": night, "ecg_history": history, "lab": lab, "patient": patient,
-              "medication": medication, "ecg_lead": leads}
+    loaded = {"ecg": night, "ecg_history": history, "lab": lab, "patient": patient, "medication": medication}
     write_parquet(night.clean, d / "ecg.parquet")
     write_parquet(ecg_history, d / "ecg_history.parquet")
     write_parquet(lab.clean, d / "lab.parquet")
     write_parquet(patient.clean, d / "patient.parquet")
-    write_parquet(leads.clean, d / "ecg_lead.parquet")
     has_medication = (Path(lake) / "medication").is_dir()
     if has_medication:
         write_parquet(medication.clean, d / "medication.parquet")
     elif (d / "medication.parquet").exists():
         (d / "medication.parquet").unlink()
+    # The night's leads now (the quality gate checks them); prior ECGs' leads after alignment.
+    leads = read_table(lake, c.ECG_LEAD, settings, scope="night", keep={"ecg_id": night.clean["ecg_id"].tolist()},
+                       days=_with_slack(set(night.clean["acquired_at"].dt.strftime("%Y-%m-%d").unique())))
+    loaded["ecg_lead"] = leads
+    write_parquet(leads.clean, d / "ecg_lead.parquet")
     rejects = pd.concat([night.rejects, history.rejects, lab.rejects, patient.rejects,
-                         medication.rejects, lead_rejects], ignore_index=True)
+                         medication.rejects, leads.rejects], ignore_index=True)
     write_parquet(rejects, d / "rejects.parquet")
     counts = {name: {"rows_in": t.rows_in, "accepted": len(t.clean), "rejected": len(t.rejects),
                      "files": t.files} for name, t in loaded.items()}
     return {"interval": [lo.isoformat(), hi.isoformat()], "stage_dir": str(d), "tables": counts,
             "rejects_by_reason": _reasons(rejects)}
+
+
+def _load_prior_leads(lake, d: Path, aligned: pd.DataFrame, settings: Settings) -> int:
+    """Append the chosen prior ECGs' lead rows to the stage's ecg_lead.parquet (scope window)."""
+    from pipeline.load import read_table
+
+    priors = aligned.dropna(subset=["prior_ecg_id"])
+    priors = priors[~priors["prior_ecg_id"].isin(aligned["ecg_id"])].drop_duplicates("prior_ecg_id")
+    if priors.empty:
+        return 0
+    days = _with_slack(set(priors["prior_acquired_at"].dt.strftime("%Y-%m-%d").unique()))
+    got = read_table(lake, c.ECG_LEAD, settings, scope="window", keep={"ecg_id": priors["prior_ecg_id"].tolist()},
+                     days=days)
+    write_parquet(got.clean, d / "prior_lead.parquet")
+    write_parquet(got.rejects, d / "rejects_prior_lead.parquet")
+    return len(got.clean)
+
+
+def read_stage(d: Path, name: str) -> pd.DataFrame | None:
+    """A stage table: the quality gate's checked copy when there is one, else the loaded one;
+    None for an optional table the lake lacks."""
+    for path in (d / f"{name}.checked.parquet", d / f"{name}.parquet"):
+        if path.exists():
+            return pd.read_parquet(path)
+    return None
+
+
+def all_rejects(d: Path) -> pd.DataFrame:
+    """Every reject of the interval: the loader's, the quality gate's and the prior leads'."""
+    parts = [pd.read_parquet(p) for p in [d / "rejects.parquet", *sorted(d.glob("rejects_*.parquet"))] if p.exists()]
+    return pd.concat(parts, ignore_index=True)
 
 
 def _with_slack(days: set[str]) -> set[str]:
@@ -135,36 +168,150 @@ def _reasons(rejects: pd.DataFrame) -> dict:
     return {f"{t}:{r}": int(n) for (t, r), n in g.items()}
 
 
-def stage_align(out, start, end, config=None, settings: Settings | None = None) -> dict:
-    """Align the loaded night (pure pandas; see pipeline/align.py) and write aligned.parquet."""
+def stage_align(out, start, end, config=None, settings: Settings | None = None, lake=None) -> dict:
+    """Align the loaded night (pure pandas; see pipeline/align.py) and write aligned.parquet;
+    with `lake`, also read the lead rows of the chosen prior ECGs (the screens compare with them)."""
     from pipeline.align import align
 
     settings = settings or load_settings(config)
     lo, hi = interval(start, end)
     d = stage_dir(out, lo, hi)
-    med_path = d / "medication.parquet"
-    aligned = align(pd.read_parquet(d / "ecg.parquet"), pd.read_parquet(d / "ecg_history.parquet"),
-                    pd.read_parquet(d / "lab.parquet"), pd.read_parquet(d / "patient.parquet"),
-                    pd.read_parquet(med_path) if med_path.exists() else None, settings)
+    ecg = read_stage(d, "ecg")
+    history = read_stage(d, "ecg_history")
+    removed = set(pd.read_parquet(d / "ecg.parquet", columns=["ecg_id"])["ecg_id"]) - set(ecg["ecg_id"])
+    history = history[~history["ecg_id"].isin(removed)]   # night ECGs the quality gate removed are no baseline
+    aligned = align(ecg, history, read_stage(d, "lab"), read_stage(d, "patient"), read_stage(d, "medication"), settings)
     write_parquet(aligned, d / "aligned.parquet")
     write_parquet(aligned, Path(out) / "aligned.parquet")
-    return {"aligned": len(aligned),
+    prior_leads = 0
+    if lake is not None:
+        prior_leads = _load_prior_leads(lake, d, aligned, settings)
+    return {"aligned": len(aligned), "prior_lead_rows": prior_leads,
             "with_potassium": int(aligned["k_mmol_l"].notna().sum()),
             "with_prior_ecg": int(aligned["prior_ecg_id"].notna().sum())}
 
 
-def run_interval(lake, out, start, end, config=None, db=None) -> dict:
+def trailing_counts(lake, lo: pd.Timestamp, hi: pd.Timestamp, nights: int = 28) -> dict:
+    """ECG rows per night over the nights before `lo`, read from the Parquet footers of the
+    date partitions only (no data pages), scaled to the run's length in days: the quality
+    gate's row-count band. (Only the ECG table: tonight's lab rows are read for the night's
+    patients alone, so a lab partition's total is no like-for-like comparison.)"""
+    import pyarrow.parquet as pq
+    from pipeline.load import table_files
+
+    scale = (hi - lo) / pd.Timedelta(days=1)
+    out = {}
+    for table in (c.ECG,):
+        first = (lo - pd.Timedelta(days=nights)).strftime("%Y-%m-%d")
+        last = (lo - pd.Timedelta(days=1)).strftime("%Y-%m-%d")
+        per_day: dict[str, int] = {}
+        for f in table_files(lake, table, first, last):
+            day = next((p[5:] for p in f.parts if p.startswith("date=")), None)
+            if day is not None:
+                per_day[day] = per_day.get(day, 0) + pq.ParquetFile(f).metadata.num_rows
+        if per_day:
+            out[table.name] = [per_day[d] * scale for d in sorted(per_day)]
+    return out
+
+
+def stage_quality(lake, out, start, end, config=None, settings: Settings | None = None) -> dict:
+    """The data-quality gate over the loaded night (pipeline/quality.py, Great Expectations).
+
+    Writes OUT/quality.json and OUT/quality.html whatever the outcome, moves failing rows to
+    the rejects, and raises QualityGateError on a critical failure: nothing is published then."""
+    from pipeline.quality import enforce, run_quality, write_report
+
+    settings = settings or load_settings(config)
+    lo, hi = interval(start, end)
+    d = stage_dir(out, lo, hi)
+    tables = {n: pd.read_parquet(d / f"{n}.parquet") for n in CHECKED_TABLES if (d / f"{n}.parquet").exists()}
+    load_rejects = pd.read_parquet(d / "rejects.parquet")
+    tonight = {"ecg": len(tables["ecg"]) + int(((load_rejects["table"] == "ecg") & (load_rejects["scope"] == "night")).sum())}
+    result = run_quality(tables, hi, trailing_counts=trailing_counts(lake, lo, hi), settings=settings,
+                         tonight_counts=tonight)
+    paths = write_report(result, out)
+    if result.passed:
+        for n, df in result.clean.items():
+            write_parquet(df, d / f"{n}.checked.parquet")
+        write_parquet(result.rejects, d / "rejects_quality.parquet")
+    checks = result.checks
+    summary = {"checks": int(len(checks)), "failed": int((checks["passed"] == False).sum()),   # noqa: E712
+               "warnings": int(((checks["passed"] == False) & (checks["severity"] == "warning")).sum()),  # noqa: E712
+               "rejected": int(len(result.rejects)), "report": paths.get("html", ""),
+               "rejects_by_check": {k: int(v) for k, v in result.rejects.groupby("reason").size().items()}}
+    enforce(result)
+    return summary
+
+
+def stage_screen(out, start, end, config=None, settings: Settings | None = None) -> dict:
+    """Run every registered screen over the aligned night; write findings.parquet."""
+    from screens import run_screens
+    from screens.criteria import load_rules
+
+    settings = settings or load_settings(config)
+    lo, hi = interval(start, end)
+    d = stage_dir(out, lo, hi)
+    rules = load_rules(settings.rules or None, source_name=settings.source)
+    leads = [read_stage(d, "ecg_lead"), read_stage(d, "prior_lead")]
+    leads = pd.concat([x for x in leads if x is not None], ignore_index=True)
+    findings = run_screens(pd.read_parquet(d / "aligned.parquet"), leads, rules)
+    write_parquet(findings, d / "findings.parquet")
+    by = findings.groupby(["screen", "tier"]).size()
+    counts: dict[str, dict[str, int]] = {}
+    for (screen, tier), n in by.items():
+        counts.setdefault(screen, {})[str(tier)] = int(n)
+    return {"findings": int(len(findings)), "by_screen_tier": counts}
+
+
+def stage_worklist(out, start, end, config=None, db=None, settings: Settings | None = None) -> dict:
+    """Fold findings into worklist items, upsert them into the database in one transaction, and
+    write OUT/worklist.parquet (the database's ranked items) atomically."""
+    from pipeline import store, worklist
+
+    settings = settings or load_settings(config)
+    lo, hi = interval(start, end)
+    d = stage_dir(out, lo, hi)
+    findings = pd.read_parquet(d / "findings.parquet")
+    aligned = pd.read_parquet(d / "aligned.parquet")
+    engine = store.open_store(db or store.sqlite_url(out))
+    try:
+        patients = sorted(set(findings["patient_id"]) | set(aligned["patient_id"]))
+        existing = store.read_items(engine, patient_ids=patients)
+        run_id = f"{lo:%Y%m%dT%H%M%SZ}_{hi:%Y%m%dT%H%M%SZ}"
+        items = worklist.build_items(findings, aligned, existing, run_id=run_id, now=hi,
+                                     episode_h=settings.windows["episode_h"])
+        db_counts = store.upsert_items(engine, items)
+        ranked = store.read_items(engine)
+    finally:
+        engine.dispose()
+    ranked = ranked.sort_values("rank", kind="stable") if "rank" in ranked.columns else ranked
+    path = worklist.write_parquet_atomic(ranked, Path(out) / "worklist.parquet")
+    active = ranked[ranked["status"].isin(worklist.ACTIVE_STATUSES)] if len(ranked) else ranked
+    return {"items_tonight": int(len(items)), "db_counts": db_counts, "path": str(path),
+            "by_screen": {k: int(v) for k, v in active.groupby("screen").size().items()} if len(active) else {}}
+
+
+def run_interval(lake, out, start, end, config=None, db=None, quality: bool = True) -> dict:
     """The whole nightly job for ECGs acquired in [start, end); returns the run summary (counts
-    only) and writes it to OUT/run_summary.json beside OUT/rejects.parquet."""
+    only) and writes it to OUT/run_summary.json beside the worklist and the rejects."""
     settings = load_settings(config)
     Path(out).mkdir(parents=True, exist_ok=True)
     loaded = stage_load(lake, out, start, end, settings=settings)
-    aligned = stage_align(out, start, end, settings=settings)
-    d = Path(loaded["stage_dir"])
-    write_parquet(pd.read_parquet(d / "rejects.parquet"), Path(out) / "rejects.parquet")
     summary = {"interval": loaded["interval"], "config": settings.source, "tables": loaded["tables"],
-               "rejects_by_reason": loaded["rejects_by_reason"], "aligned": aligned,
-               "outputs": {"aligned": str(Path(out) / "aligned.parquet"),
-                           "rejects": str(Path(out) / "rejects.parquet")}}
+               "rejects_by_reason": loaded["rejects_by_reason"]}
+    d = Path(loaded["stage_dir"])
+    if quality:
+        summary["quality"] = stage_quality(lake, out, start, end, settings=settings)
+    summary["aligned"] = stage_align(out, start, end, settings=settings, lake=lake)
+    summary["tables"]["ecg"]["screened"] = summary["aligned"]["aligned"]
+    screened = stage_screen(out, start, end, settings=settings)
+    summary["findings"] = screened["by_screen_tier"]
+    summary["worklist"] = stage_worklist(out, start, end, db=db, settings=settings)
+    rejects = all_rejects(d)
+    summary["rejects_by_reason"] = _reasons(rejects)
+    write_parquet(rejects, Path(out) / "rejects.parquet")
+    summary["outputs"] = {"worklist": summary["worklist"]["path"],
+                          "aligned": str(Path(out) / "aligned.parquet"),
+                          "rejects": str(Path(out) / "rejects.parquet")}
     write_json(summary, Path(out) / "run_summary.json")
     return summary

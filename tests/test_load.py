@@ -7,7 +7,7 @@ import pytest
 from pipeline import contract as c
 from pipeline.config import settings_from_dict
 from pipeline.load import LakeError, read_table, table_files
-from pipeline.run import stage_load
+from pipeline.run import stage_align, stage_load
 from tests.lake_builders import ecg_row, lab_row, patient_row, write_lake, write_table
 
 DEFAULT = settings_from_dict({})
@@ -89,6 +89,9 @@ def test_stage_load_reads_only_the_nights_patients_and_reconciles(tmp_path):
     t = got["tables"]
     assert t["ecg"]["accepted"] == 1 and t["ecg_history"]["accepted"] == 1
     assert t["lab"]["accepted"] == 1 and t["patient"]["accepted"] == 1
-    assert t["ecg_lead"]["accepted"] == 24                 # the night's ECG and its prior, 12 leads each
+    assert t["ecg_lead"]["accepted"] == 12                 # the night's ECG's 12 leads
     for counts in t.values():
         assert counts["rows_in"] == counts["accepted"] + counts["rejected"]
+    # After alignment, the chosen prior ECG's leads are read too (and only those).
+    aligned = stage_align(tmp_path / "out", *NIGHT, lake=lake)
+    assert aligned["with_prior_ecg"] == 1 and aligned["prior_lead_rows"] == 12

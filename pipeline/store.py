@@ -1,0 +1,504 @@
+"""The worklist in SQL (SQLAlchemy 2): items, review outcomes, yield and export.
+
+Tables
+    worklist_item  one row per item (pipeline.worklist.ITEM_COLUMNS), primary key item_id
+    review         one row per recorded review outcome; the latest review of an item closes it
+
+SQLite by default (OUT/worklist.sqlite, see sqlite_url), PostgreSQL through a
+`postgresql+psycopg://...` URL. Timestamps are stored in UTC (SQLite drops offsets, so UTC is
+written and UTC is assumed on the way back). JSON travels as text. Nothing here logs or prints
+row values; errors name tables, columns, files and counts.
+
+Sources
+    WILSON-1927    Wilson EB. Probable inference, the law of succession, and statistical inference.
+                   J Am Stat Assoc 1927;22:209-212 (the score interval).
+    NEWCOMBE-1998  Newcombe RG. Two-sided confidence intervals for the single proportion: comparison
+                   of seven methods. Stat Med 1998;17:857-872 (recommends the score interval; worked
+                   examples used in tests/test_store.py).
+"""
+from __future__ import annotations
+
+import datetime as dt
+import re
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from scipy.stats import norm
+from sqlalchemy import (CheckConstraint, Column, DateTime, Float, ForeignKey, Index, Integer, MetaData,
+                        String, Table, Text, TypeDecorator, UniqueConstraint, bindparam, case,
+                        create_engine, func, insert, select, update)
+from sqlalchemy.dialects import postgresql, sqlite
+from sqlalchemy.engine import Connection, Engine
+
+from pipeline.worklist import (ACTIVE_STATUSES, ITEM_COLUMNS, STATUS_CLOSED, STATUS_EXPLAINED,
+                               STATUS_REOPENED, STATUSES, TIMESTAMP_COLUMNS, apply_reopen_rule,
+                               empty_items, normalise_items)
+
+# Review outcomes: the one place they are named.
+OUTCOME_CONFIRMED = "confirmed"            # the flagged abnormality is real and was news
+OUTCOME_NOT_CONFIRMED = "not_confirmed"    # the reviewer does not find it
+OUTCOME_ALREADY_KNOWN = "already_known"    # real, but the team already knew
+OUTCOME_DATA_PROBLEM = "data_problem"      # flagged because of wrong or mismatched data
+OUTCOMES = (OUTCOME_CONFIRMED, OUTCOME_NOT_CONFIRMED, OUTCOME_ALREADY_KNOWN, OUTCOME_DATA_PROBLEM)
+# Positive predictive value counts a flag as a true positive when the abnormality was real,
+# whether or not it was news: confirmed and already_known (local choice, docs/prioritisation.md).
+TRUE_POSITIVE_OUTCOMES = (OUTCOME_CONFIRMED, OUTCOME_ALREADY_KNOWN)
+
+# Reasons a review row from a CSV is rejected (reported per line, never silently dropped).
+REJECT_MISSING_VALUE = "missing_value"
+REJECT_UNKNOWN_OUTCOME = "unknown_outcome"
+REJECT_UNKNOWN_ITEM = "unknown_item"
+REJECT_UNPARSEABLE_TIMESTAMP = "unparseable_timestamp"
+REJECT_NAIVE_TIMESTAMP = "naive_timestamp"
+REJECT_BEFORE_FLAGGED = "reviewed_before_flagged"
+REVIEW_CSV_REQUIRED = ("item_id", "reviewed_at", "reviewer_role", "outcome")
+REVIEW_CSV_OPTIONAL = ("note",)
+
+WILSON_CONFIDENCE = 0.95
+CHUNK = 2000   # ids per IN (...) list; well under SQLite's bound-parameter limit
+# Compared to decide whether an incoming item changed (run_id, rank, last_updated_at and
+# first_flagged_at are bookkeeping: a rerun that changes only those leaves the row alone).
+COMPARED_COLUMNS = [c for c in ITEM_COLUMNS if c not in ("item_id", "rank", "run_id", "last_updated_at",
+                                                         "first_flagged_at")]
+
+
+class UTCDateTime(TypeDecorator):
+    """tz-aware timestamps in, tz-aware UTC out, on SQLite (which drops offsets) and PostgreSQL."""
+    impl = DateTime(timezone=True)
+    cache_ok = True
+
+    def process_bind_param(self, value, dialect):
+        if value is None or value is pd.NaT:
+            return None
+        if isinstance(value, pd.Timestamp):
+            value = value.to_pydatetime()
+        if value.tzinfo is None:
+            raise ValueError("naive timestamp given to a UTC column")
+        value = value.astimezone(dt.timezone.utc)
+        return value.replace(tzinfo=None) if dialect.name == "sqlite" else value
+
+    def process_result_value(self, value, dialect):
+        if value is None:
+            return None
+        return value.replace(tzinfo=dt.timezone.utc) if value.tzinfo is None else value.astimezone(dt.timezone.utc)
+
+
+def _in_list(values) -> str:
+    return ", ".join(f"'{v}'" for v in values)
+
+
+metadata = MetaData()
+
+worklist_item = Table(
+    "worklist_item", metadata,
+    Column("item_id", String(40), primary_key=True),
+    Column("rank", Integer),
+    Column("tier", Integer, nullable=False),
+    Column("screen", String(64), nullable=False),
+    Column("patient_id", Text, nullable=False),
+    Column("ecg_id", Text, nullable=False),
+    Column("ecg_at", UTCDateTime, nullable=False),
+    Column("score", Float, nullable=False),
+    Column("summary", Text),
+    Column("evidence", Text),          # JSON
+    Column("caveats", Text),           # JSON list
+    Column("territories", Text),
+    Column("rule_version", String(64)),
+    Column("run_id", String(128)),
+    Column("first_flagged_at", UTCDateTime, nullable=False),
+    Column("status", String(16), nullable=False),
+    Column("last_updated_at", UTCDateTime, nullable=False),
+    Column("status_reason", Text),
+    Column("episode_start", UTCDateTime, nullable=False),
+    Column("episode_end", UTCDateTime, nullable=False),
+    Column("other_ecg_ids", Text),     # JSON list
+    Column("score_parts", Text),       # JSON object
+    CheckConstraint(f"status IN ({_in_list(STATUSES)})", name="ck_worklist_item_status"),
+    CheckConstraint("tier BETWEEN 1 AND 4", name="ck_worklist_item_tier"),
+    Index("ix_worklist_item_patient_screen", "patient_id", "screen"),
+    Index("ix_worklist_item_rank", "rank"),
+)
+
+review = Table(
+    "review", metadata,
+    Column("review_id", Integer, primary_key=True, autoincrement=True),
+    Column("item_id", String(40), ForeignKey("worklist_item.item_id"), nullable=False),
+    Column("reviewed_at", UTCDateTime, nullable=False),
+    Column("reviewer_role", String(128), nullable=False),
+    Column("outcome", String(16), nullable=False),
+    Column("note", Text),
+    Column("recorded_via", String(16), nullable=False),   # "cli" or "csv"
+    CheckConstraint(f"outcome IN ({_in_list(OUTCOMES)})", name="ck_review_outcome"),
+    UniqueConstraint("item_id", "reviewed_at", "reviewer_role", name="uq_review_entry"),
+    Index("ix_review_item", "item_id"),
+)
+
+
+# ---------------------------------------------------------------------------------------------
+# Engine and reading
+# ---------------------------------------------------------------------------------------------
+def sqlite_url(out) -> str:
+    """The default store: OUT/worklist.sqlite."""
+    return f"sqlite:///{(Path(out) / 'worklist.sqlite').resolve()}"
+
+
+def open_store(url: str) -> Engine:
+    """Engine for `url`, with the tables created if absent (the SQLite folder too)."""
+    if url.startswith("sqlite:///") and url != "sqlite:///:memory:":
+        Path(url[len("sqlite:///"):]).parent.mkdir(parents=True, exist_ok=True)
+    engine = create_engine(url)
+    metadata.create_all(engine)
+    return engine
+
+
+def _records(df: pd.DataFrame) -> list[dict]:
+    """Rows as dicts with None for every missing value (PostgreSQL would store NaN as 'NaN')."""
+    return df.astype(object).where(df.notna(), None).to_dict("records")
+
+
+def _frame(rows, columns) -> pd.DataFrame:
+    return pd.DataFrame([tuple(r) for r in rows], columns=columns)
+
+
+def _read(conn: Connection, item_ids=None, patient_ids=None, screens=None) -> pd.DataFrame:
+    t = worklist_item
+    cols = [t.c[c] for c in ITEM_COLUMNS]
+    base = select(*cols)
+    if screens is not None:
+        base = base.where(t.c.screen.in_(list(screens)))
+    filters = [(t.c.item_id, item_ids), (t.c.patient_id, patient_ids)]
+    column, values = next(((c, v) for c, v in filters if v is not None), (None, None))
+    if column is None:
+        rows = conn.execute(base).all()
+    else:
+        values = sorted(set(map(str, values)))
+        rows = [r for i in range(0, len(values), CHUNK)
+                for r in conn.execute(base.where(column.in_(values[i:i + CHUNK]))).all()]
+        if item_ids is not None and patient_ids is not None:
+            wanted = set(map(str, patient_ids))
+            rows = [r for r in rows if r.patient_id in wanted]
+    if not rows:
+        return empty_items()
+    df = normalise_items(_frame(rows, ITEM_COLUMNS))
+    return df.sort_values(["rank", "item_id"], kind="mergesort", na_position="last").reset_index(drop=True)
+
+
+def read_items(engine: Engine, patient_ids=None, screens=None) -> pd.DataFrame:
+    """Stored items (ITEM_COLUMNS), in rank order; optionally only these patients and screens."""
+    with engine.connect() as conn:
+        return _read(conn, patient_ids=patient_ids, screens=screens)
+
+
+# ---------------------------------------------------------------------------------------------
+# Upsert and rank
+# ---------------------------------------------------------------------------------------------
+def _canonical(df: pd.DataFrame) -> pd.DataFrame:
+    """COMPARED_COLUMNS as text, so equal content compares equal across dialects."""
+    out = pd.DataFrame(index=df.index)
+    for c in COMPARED_COLUMNS:
+        s = df[c]
+        if c in TIMESTAMP_COLUMNS:
+            s = s.dt.strftime("%Y-%m-%dT%H:%M:%S.%f")
+        elif c == "score":
+            s = s.round(6).map("{:.6f}".format)
+        out[c] = s.astype("str").fillna("\x00")
+    return out
+
+
+def _rerank(conn: Connection) -> None:
+    """Rank every stored item in one statement, the same order as worklist.rank_items."""
+    t = worklist_item
+    group = case((t.c.status.in_(ACTIVE_STATUSES), 0), (t.c.status == STATUS_EXPLAINED, 1), else_=2)
+    rn = func.row_number().over(order_by=[group, t.c.tier, t.c.score.desc(), t.c.ecg_at.desc(), t.c.item_id])
+    ordered = select(t.c.item_id.label("ordered_id"), rn.label("rn")).subquery("ordered")
+    conn.execute(update(t).where(t.c.item_id == ordered.c.ordered_id).values(rank=ordered.c.rn))
+
+
+def upsert_items(engine: Engine, items: pd.DataFrame) -> dict:
+    """Insert or update items on item_id, in one transaction, then re-rank the whole table.
+
+    Rows whose content (COMPARED_COLUMNS) equals the stored row are left alone, so running the
+    same window twice gives the identical table. A stored closed or explained item is not
+    reopened unless the incoming one is more severe (worklist.apply_reopen_rule); then it reopens
+    with the reason. first_flagged_at is never overwritten. Returns counts:
+    inserted, updated, reopened, unchanged."""
+    counts = {"inserted": 0, "updated": 0, "reopened": 0, "unchanged": 0}
+    if items.empty:
+        return counts
+    incoming = normalise_items(items)
+    if incoming["item_id"].duplicated().any():
+        raise ValueError("worklist items: item_id is not unique within the batch")
+    t = worklist_item
+    with engine.begin() as conn:
+        stored = _read(conn, item_ids=incoming["item_id"])
+        incoming = apply_reopen_rule(incoming, stored)
+        known = incoming["item_id"].isin(stored["item_id"])
+        old = stored.set_index("item_id").reindex(incoming["item_id"])
+        old.index = incoming.index
+        same = (_canonical(incoming) == _canonical(old)).all(axis=1) & known
+        reopened = known & incoming["status"].eq(STATUS_REOPENED) & old["status"].ne(STATUS_REOPENED)
+        counts["inserted"] = int((~known).sum())
+        counts["unchanged"] = int(same.sum())
+        counts["reopened"] = int(reopened.sum())
+        counts["updated"] = int((known & ~same & ~reopened).sum())
+        write = incoming[~same]
+        if len(write):
+            make = {"postgresql": postgresql.insert, "sqlite": sqlite.insert}[engine.dialect.name]
+            stmt = make(t)
+            stmt = stmt.on_conflict_do_update(
+                index_elements=[t.c.item_id],
+                set_={c.name: stmt.excluded[c.name] for c in t.columns
+                      if c.name not in ("item_id", "first_flagged_at")})
+            rows = _records(write[ITEM_COLUMNS])
+            for i in range(0, len(rows), CHUNK):
+                conn.execute(stmt, rows[i:i + CHUNK])
+            _rerank(conn)
+    return counts
+
+
+# ---------------------------------------------------------------------------------------------
+# Reviews
+# ---------------------------------------------------------------------------------------------
+def normalise_outcome(text) -> str:
+    """'Not confirmed', 'not-confirmed' and 'NOT_CONFIRMED' all mean not_confirmed."""
+    return re.sub(r"[\s\-]+", "_", str(text).strip().lower())
+
+
+def _apply_reviews(conn: Connection, new: pd.DataFrame, recorded_via: str) -> int:
+    """Insert review rows and close their items: an item is closed by its latest review, unless
+    it was reopened after that review was made. Returns rows inserted."""
+    t, r = worklist_item, review
+    rows = _records(new[["item_id", "reviewed_at", "reviewer_role", "outcome", "note"]].assign(recorded_via=recorded_via))
+    conn.execute(insert(r), rows)
+    ids = sorted(new["item_id"].unique())
+    latest = _frame(conn.execute(
+        select(r.c.item_id, r.c.reviewed_at, r.c.outcome, r.c.review_id).where(r.c.item_id.in_(ids))).all(),
+        ["item_id", "reviewed_at", "outcome", "review_id"])
+    latest = latest.sort_values(["item_id", "reviewed_at", "review_id"]).drop_duplicates("item_id", keep="last")
+    items = _frame(conn.execute(select(t.c.item_id, t.c.status, t.c.last_updated_at)
+                                .where(t.c.item_id.in_(ids))).all(), ["item_id", "status", "last_updated_at"])
+    m = latest.merge(items, on="item_id")
+    close = ~(m["status"].eq(STATUS_REOPENED) & (m["reviewed_at"] < m["last_updated_at"]))
+    m = m[close]
+    if len(m):
+        conn.execute(update(t).where(t.c.item_id == bindparam("b_item_id")).values(
+            status=STATUS_CLOSED, status_reason=bindparam("b_reason"), last_updated_at=bindparam("b_at")),
+            [{"b_item_id": i, "b_reason": f"reviewed: {o}", "b_at": a}
+             for i, o, a in zip(m["item_id"], m["outcome"], m["reviewed_at"])])
+        _rerank(conn)
+    return len(rows)
+
+
+def _check_reviews(conn: Connection, df: pd.DataFrame) -> pd.Series:
+    """Reject reason per review row (NaN = fine). df has item_id, reviewed_at (UTC or NaT),
+    reviewer_role, outcome already normalised."""
+    t = worklist_item
+    ids = sorted(set(df["item_id"].dropna().astype(str)))
+    found = [row for i in range(0, len(ids), CHUNK) for row in conn.execute(
+        select(t.c.item_id, t.c.first_flagged_at).where(t.c.item_id.in_(ids[i:i + CHUNK]))).all()]
+    flagged = _frame(found, ["item_id", "first_flagged_at"])
+    flagged["first_flagged_at"] = pd.to_datetime(flagged["first_flagged_at"], utc=True)
+    first = df[["item_id"]].merge(flagged, on="item_id", how="left")["first_flagged_at"]
+    first.index = df.index
+    reason = pd.Series(np.nan, index=df.index, dtype="str")
+    reason = reason.mask(reason.isna() & df["reviewed_at"].notna() & first.notna() & (df["reviewed_at"] < first),
+                         REJECT_BEFORE_FLAGGED)
+    reason = reason.mask(~df["item_id"].isin(flagged["item_id"]), REJECT_UNKNOWN_ITEM)
+    reason = reason.mask(~df["outcome"].isin(OUTCOMES), REJECT_UNKNOWN_OUTCOME)
+    return reason
+
+
+def record_review(engine: Engine, item_id: str, outcome: str, role: str, note: str | None = None,
+                  reviewed_at=None) -> bool:
+    """Record one review outcome and close the item. reviewed_at: tz-aware (the CLI passes the
+    time of entry). Returns False when the same review (item, time, role) is already recorded.
+    Raises ValueError for an unknown item or outcome, a missing role, or a review dated before
+    the item was flagged."""
+    outcome = normalise_outcome(outcome)
+    if not role or not str(role).strip():
+        raise ValueError("review: reviewer role is required")
+    when = pd.Timestamp(reviewed_at)
+    if when.tzinfo is None:
+        raise ValueError("review: reviewed_at must carry a UTC offset")
+    one = pd.DataFrame({"item_id": [str(item_id)], "reviewed_at": [when.tz_convert("UTC").as_unit("us")],
+                        "reviewer_role": [str(role).strip()], "outcome": [outcome],
+                        "note": [note if note else None]})
+    with engine.begin() as conn:
+        reason = _check_reviews(conn, one).iloc[0]
+        if isinstance(reason, str):
+            raise ValueError(f"review rejected: {reason}")
+        if _duplicates(conn, one).iloc[0]:
+            return False
+        _apply_reviews(conn, one, "cli")
+    return True
+
+
+def _duplicates(conn: Connection, df: pd.DataFrame) -> pd.Series:
+    """True where (item_id, reviewed_at, reviewer_role) is already stored or repeats an earlier row."""
+    r = review
+    ids = sorted(set(df["item_id"].astype(str)))
+    have = _frame([row for i in range(0, len(ids), CHUNK) for row in conn.execute(
+        select(r.c.item_id, r.c.reviewed_at, r.c.reviewer_role).where(r.c.item_id.in_(ids[i:i + CHUNK]))).all()],
+        ["item_id", "reviewed_at", "reviewer_role"])
+    key = df["item_id"].astype(str) + "|" + df["reviewed_at"].dt.strftime("%Y-%m-%dT%H:%M:%S.%f") + "|" + df["reviewer_role"]
+    stored = set()
+    if len(have):
+        at = pd.to_datetime(have["reviewed_at"], utc=True).dt.strftime("%Y-%m-%dT%H:%M:%S.%f")
+        stored = set(have["item_id"].astype(str) + "|" + at + "|" + have["reviewer_role"])
+    return key.isin(stored) | key.duplicated()
+
+
+_OFFSET = re.compile(r"(?:Z|[+-]\d\d(?::?\d\d)?)$", re.IGNORECASE)
+
+
+def import_reviews_csv(engine: Engine, path, timezone: str | None = None) -> dict:
+    """Import review outcomes exported by staff tools. CSV columns: item_id, reviewed_at (ISO 8601
+    with a UTC offset; naive times only with `timezone`, an IANA name), reviewer_role, outcome
+    (any case, spaces or hyphens for underscores), note (optional). Good rows are imported in
+    one transaction; each bad row is rejected with its line number, column and reason; rows
+    already recorded are counted as duplicates (re-importing a file changes nothing).
+    Returns {"read", "imported", "duplicate", "rejected", "rejects": [{"line", "column", "reason"}]}.
+    A missing required column raises ValueError (whole-file error)."""
+    raw = pd.read_csv(path, dtype=str, keep_default_na=False)
+    raw.columns = [c.strip().lower() for c in raw.columns]
+    missing = [c for c in REVIEW_CSV_REQUIRED if c not in raw.columns]
+    if missing:
+        raise ValueError(f"{Path(path).name}: missing column(s) {', '.join(missing)}")
+    df = pd.DataFrame(index=raw.index)
+    for c in REVIEW_CSV_REQUIRED + REVIEW_CSV_OPTIONAL:
+        df[c] = raw[c].str.strip() if c in raw.columns else ""
+    line = raw.index.to_series() + 2   # header is line 1
+    df["outcome"] = df["outcome"].map(normalise_outcome)
+    df["note"] = df["note"].where(df["note"].ne(""), None)
+
+    text = df["reviewed_at"]
+    aware = text.str.contains(_OFFSET, regex=True)
+    at = pd.Series(pd.NaT, index=df.index, dtype="datetime64[us, UTC]")
+    if aware.any():
+        at[aware] = pd.to_datetime(text[aware], utc=True, errors="coerce", format="ISO8601").dt.as_unit("us")
+    naive = ~aware & text.ne("")
+    naive_parsed = pd.to_datetime(text.where(naive), errors="coerce", format="ISO8601")
+    if timezone and naive.any():
+        local = naive_parsed[naive].dt.tz_localize(timezone, ambiguous="NaT", nonexistent="NaT")
+        at[naive] = local.dt.tz_convert("UTC").dt.as_unit("us")
+    df["reviewed_at"] = at
+
+    column = pd.Series(np.nan, index=df.index, dtype="str")
+    reason = pd.Series(np.nan, index=df.index, dtype="str")
+
+    def reject(mask, col, why):
+        nonlocal column, reason
+        mask = mask & reason.isna()
+        column, reason = column.mask(mask, col), reason.mask(mask, why)
+
+    for c in REVIEW_CSV_REQUIRED:
+        reject(raw[c].str.strip().eq(""), c, REJECT_MISSING_VALUE)
+    if not timezone:
+        reject(naive & naive_parsed.notna(), "reviewed_at", REJECT_NAIVE_TIMESTAMP)
+    reject(df["reviewed_at"].isna(), "reviewed_at", REJECT_UNPARSEABLE_TIMESTAMP)
+
+    with engine.begin() as conn:
+        later = _check_reviews(conn, df)
+        col_of = {REJECT_UNKNOWN_ITEM: "item_id", REJECT_UNKNOWN_OUTCOME: "outcome",
+                  REJECT_BEFORE_FLAGGED: "reviewed_at"}
+        for why, col in col_of.items():
+            reject(later.eq(why), col, why)
+        good = df[reason.isna()]
+        dup = _duplicates(conn, good) if len(good) else pd.Series(dtype=bool)
+        new = good[~dup]
+        imported = _apply_reviews(conn, new, "csv") if len(new) else 0
+    bad = reason.notna()
+    return {"read": int(len(df)), "imported": int(imported), "duplicate": int(dup.sum()),
+            "rejected": int(bad.sum()),
+            "rejects": [{"line": int(n), "column": c, "reason": w}
+                        for n, c, w in zip(line[bad], column[bad], reason[bad])]}
+
+
+# ---------------------------------------------------------------------------------------------
+# Yield
+# ---------------------------------------------------------------------------------------------
+def wilson_interval(k, n, confidence: float = WILSON_CONFIDENCE):
+    """Wilson score interval for k successes in n trials [WILSON-1927]; arrays in, (low, high)
+    out; NaN where n == 0."""
+    k, n = np.asarray(k, dtype=float), np.asarray(n, dtype=float)
+    z = norm.ppf(1 - (1 - confidence) / 2)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        p = k / n
+        denom = 1 + z ** 2 / n
+        centre = (p + z ** 2 / (2 * n)) / denom
+        half = z / denom * np.sqrt(p * (1 - p) / n + z ** 2 / (4 * n ** 2))
+    low, high = np.clip(centre - half, 0, 1), np.clip(centre + half, 0, 1)
+    bad = ~(n > 0)
+    return np.where(bad, np.nan, low), np.where(bad, np.nan, high)
+
+
+YIELD_COLUMNS = ["screen", "tier", "items", "reviewed", "confirmed", "already_known", "not_confirmed",
+                 "data_problem", "ppv", "ppv_low", "ppv_high", "median_hours_to_review"]
+
+
+def yield_table(engine: Engine, since=None) -> pd.DataFrame:
+    """Per screen and tier: items flagged (first_flagged_at >= since), items reviewed, each item's
+    latest outcome counted, PPV = (confirmed + already_known) / reviewed with its 95 % Wilson
+    interval, and the median hours from first flag to first review."""
+    t, r = worklist_item, review
+    q = select(t.c.item_id, t.c.screen, t.c.tier, t.c.first_flagged_at)
+    if since is not None:
+        since = pd.Timestamp(since)
+        since = since.tz_localize("UTC") if since.tzinfo is None else since.tz_convert("UTC")
+        q = q.where(t.c.first_flagged_at >= since.to_pydatetime())
+    with engine.connect() as conn:
+        items = _frame(conn.execute(q).all(), ["item_id", "screen", "tier", "first_flagged_at"])
+        reviews = _frame(conn.execute(select(r.c.item_id, r.c.reviewed_at, r.c.outcome, r.c.review_id)).all(),
+                         ["item_id", "reviewed_at", "outcome", "review_id"])
+    if items.empty:
+        return pd.DataFrame({c: pd.Series(dtype=float) for c in YIELD_COLUMNS})
+    items["first_flagged_at"] = pd.to_datetime(items["first_flagged_at"], utc=True)
+    reviews["reviewed_at"] = pd.to_datetime(reviews["reviewed_at"], utc=True)
+    reviews = reviews.sort_values(["item_id", "reviewed_at", "review_id"])
+    latest = reviews.drop_duplicates("item_id", keep="last")[["item_id", "outcome"]]
+    first = reviews.drop_duplicates("item_id", keep="first")[["item_id", "reviewed_at"]]
+    items = items.merge(latest, on="item_id", how="left").merge(first, on="item_id", how="left")
+    items["hours"] = (items["reviewed_at"] - items["first_flagged_at"]) / pd.Timedelta(hours=1)
+    for o in OUTCOMES:
+        items[o] = items["outcome"].eq(o).astype(int)
+    g = items.groupby(["screen", "tier"], sort=True)
+    out = pd.DataFrame({"items": g.size(), "reviewed": g["outcome"].count(),
+                        **{o: g[o].sum() for o in OUTCOMES},
+                        "median_hours_to_review": g["hours"].median()}).reset_index()
+    positives = out[list(TRUE_POSITIVE_OUTCOMES)].sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out["ppv"] = np.where(out["reviewed"] > 0, positives / out["reviewed"].where(out["reviewed"] > 0), np.nan)
+    out["ppv_low"], out["ppv_high"] = wilson_interval(positives, out["reviewed"])
+    out["tier"] = out["tier"].astype("int64")
+    return out[YIELD_COLUMNS]
+
+
+# ---------------------------------------------------------------------------------------------
+# Export
+# ---------------------------------------------------------------------------------------------
+_FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+
+
+def _spreadsheet_safe(s: pd.Series) -> pd.Series:
+    """Prefix text a spreadsheet would run as a formula with a quote (CSV injection)."""
+    text = s.astype("str")
+    risky = text.str.startswith(_FORMULA_START, na=False)
+    return text.mask(risky, "'" + text)
+
+
+def export_items(engine: Engine, fmt: str = "csv", dest=None) -> int:
+    """Write all stored items in rank order to `dest` (a path, or a text stream such as
+    sys.stdout) as CSV for spreadsheets. Returns the number of rows."""
+    if fmt != "csv":
+        raise ValueError(f"export: unknown format {fmt!r} (known: csv)")
+    df = read_items(engine)
+    text_cols = [c for c in ITEM_COLUMNS if df[c].dtype == "str"]
+    for c in text_cols:
+        df[c] = _spreadsheet_safe(df[c])
+    for c in TIMESTAMP_COLUMNS:
+        df[c] = df[c].dt.strftime("%Y-%m-%dT%H:%M:%SZ")
+    if dest is None:
+        raise ValueError("export: no destination given")
+    df.to_csv(dest, index=False, lineterminator="\n")
+    return len(df)

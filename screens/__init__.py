@@ -1,0 +1,73 @@
+"""The screens: transparent rules from the aligned ECG table to a table of findings.
+
+Each screen is one module, `screens/<name>.py`, holding
+`screen_<name>(aligned, leads, rules=None) -> findings`: a pure function (no I/O, no clock,
+inputs left unchanged; the decision is vectorised over the whole frame and only flagged rows
+get their evidence built). Adding a screen means adding its module, its section in
+`screens/rules.toml`, and one line in `SCREENS` below.
+
+Findings frame (FINDING_COLUMNS, in this order)
+    ecg_id, patient_id (str); acquired_at (datetime64[us, UTC]); screen (str: hyperkalemia,
+    long_qt, st_deviation); tier (int64, 1 most urgent .. 4); score_parts (JSON object);
+    summary (one line, plain words, key values with units); evidence (JSON:
+    {"rule_version", "values": {...}, "rules": [{"key","op","value","unit","source"}, ...],
+    plus screen extras: hyperkalemia "signs", long_qt "tisdale"}); caveats (JSON list of
+    texts); territories (comma-joined words of inferior, lateral, anterior, septal,
+    posterior, right_ventricular; "" when none); rule_version (str, e.g. "long_qt/1.0.0",
+    "long_qt/1.0.0+site.1a2b3c4d" when a site overrode one of its rules).
+
+score_parts (JSON numbers; a missing number is null, read it as NaN)
+    severity        0..1, how far into its tier the finding is (each screen documents its recipe)
+    lab_confirmed   0/1, a laboratory value supports the finding (non-haemolysed K >= 5.5;
+                    a low K/Mg/Ca modifier; troponin above its URL or rising)
+    lab_gap_min     |minutes| between the deciding lab's collection and the ECG; null if none
+    trend           signed change: K change mmol/L (hyperkalemia), QTc rise ms from the prior
+                    ECG (long_qt), troponin delta ng/L (st_deviation); null when unknown
+    prior_present   0/1, the patient has a prior ECG in the aligned window
+    troponin_ratio  max troponin / its assay URL in the window (st_deviation); null otherwise
+    Screens append their own after these (hyperkalemia: sign_count, hemolyzed; long_qt:
+    qtc_ms, modifier_count, tisdale_points; st_deviation: max_st_uv, leads_meeting, reciprocal).
+"""
+
+from __future__ import annotations
+
+from typing import Callable
+
+import pandas as pd
+
+from screens._frame import FINDING_COLUMNS, SCORE_PART_KEYS, empty_findings
+from screens.criteria import Rules, Threshold, load_rules
+from screens.hyperkalemia import screen_hyperkalemia
+from screens.long_qt import screen_long_qt
+from screens.st_deviation import screen_st_deviation
+
+ScreenFn = Callable[[pd.DataFrame, pd.DataFrame, Rules], pd.DataFrame]
+
+SCREENS: dict[str, ScreenFn] = {
+    "hyperkalemia": screen_hyperkalemia,
+    "long_qt": screen_long_qt,
+    "st_deviation": screen_st_deviation,
+}
+
+
+def run_screens(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | None = None) -> pd.DataFrame:
+    """All registered screens over the aligned ECGs, concatenated in registry order
+    (within a screen, in the aligned table's row order); an empty findings frame when none."""
+    rules = rules or load_rules()
+    parts = [fn(aligned, leads, rules) for fn in SCREENS.values()]
+    parts = [p for p in parts if len(p)]
+    if not parts:
+        return empty_findings()
+    return pd.concat(parts, ignore_index=True)[FINDING_COLUMNS]
+
+
+__all__ = [
+    "FINDING_COLUMNS",
+    "SCORE_PART_KEYS",
+    "SCREENS",
+    "Rules",
+    "Threshold",
+    "empty_findings",
+    "load_rules",
+    "run_screens",
+]

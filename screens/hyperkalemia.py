@@ -1,0 +1,317 @@
+"""Hyperkalemia: a high potassium near the ECG, the ECG signs of one, or both.
+
+What it flags
+    - every ECG with a potassium in the lab window at or above the mild band (5.5 mmol/L),
+      with or without ECG signs: the ECG is insensitive (typical changes in only a minority
+      of hyperkalemic patients, MONTAGUE-2008), so a high potassium with a normal ECG is
+      still a finding and the signs only add urgency;
+    - ECGs showing any sign below with NO potassium in the window: a finding that says no
+      potassium was measured and suggests one. A potassium that was measured and is below
+      5.5 mmol/L gives no finding (the signs then have another cause).
+
+ECG signs, each recorded separately in the evidence (`signs`: true, false, or null = not
+evaluable because an input is missing)
+    peaked_t   T >= 1000 uV in a precordial lead (V1-V6) or >= 600 uV in a limb lead
+               (I, II, III, aVL, aVF), or T grown >= 50 % against the prior ECG in the same
+               lead where the prior T was an upright wave of >= 100 uV (local floor)
+    qrs        QRS >= 120 ms, or widened >= 20 ms against the prior ECG
+    pr         PR > 200 ms, or lengthened >= 40 ms against the prior ECG
+    p_flat     |P| in II < 50 uV (flattened or absent; local cut point)
+    brady      heart rate < 50 bpm
+
+Tiers (1 most urgent)
+    1  severe K (>= 6.5) with ECG signs
+    2  severe K alone, or moderate K (6.0-6.4) with signs
+    3  moderate K alone, or mild K (5.5-5.9) with signs;
+       no potassium in the window and >= 2 distinct signs (setting no_k_signs_for_tier3)
+    4  mild K alone; no potassium in the window and one sign
+    A haemolysed specimen WITHOUT ECG signs drops one tier (capped at 4) and halves the
+    severity, so it always ranks below a non-haemolysed result of the same value; it carries
+    a caveat that names it and advises a repeat sample. With ECG signs it keeps its tier.
+    Tier is monotone in potassium: a higher value never gives a less urgent tier.
+
+score_parts
+    severity       0.7 * K position in [5.5, 7.5] mmol/L + 0.3 * (signs / 5); signs / 5 with no K;
+                   halved for a haemolysed specimen without signs
+    lab_confirmed  1 when a non-haemolysed potassium >= 5.5 decided the finding
+    lab_gap_min    |k_offset_min| (null with no potassium)
+    trend          k_change_mmol_l (this potassium minus the one before it, null if none)
+    prior_present  1 when a prior ECG exists
+    troponin_ratio null (not used here)
+    sign_count, hemolyzed  extra parts
+
+Missing inputs stay visible: a sign whose inputs are missing is null in `signs`, and a
+flagged finding says in its caveats which signs could not be assessed.
+
+Sources (citations in screens/rules.toml [sources])
+    UKKA-2020      UK Kidney Association. Clinical practice guidelines: treatment of acute
+                   hyperkalaemia in adults. 2020. Bands mild 5.5-5.9, moderate 6.0-6.4,
+                   severe >= 6.5 mmol/L (checked against secondary pages citing the 2023 update).
+    MONTAGUE-2008  Montague BT, Ouellette JR, Buller GK. Retrospective review of the frequency of
+                   ECG changes in hyperkalemia. Clin J Am Soc Nephrol 2008;3:324-330.
+    PRACTICE       Peaked T > 10 mm precordial / > 6 mm limb (textbook words ">"; the project
+                   issue words them ">=" and we follow the issue), QRS >= 120 ms, PR > 200 ms,
+                   bradycardia < 50 bpm.
+    LOCAL          Change cut points against the prior ECG (T +50 %, QRS +20 ms, PR +40 ms), the
+                   100 uV floor for T growth and the 50 uV flat-P cut point: cardiosieve's choices.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from screens._frame import (
+    NO_FINDING,
+    build_findings,
+    empty_findings,
+    fired,
+    flag,
+    fmt,
+    fmt_leads,
+    fmt_offset,
+    num,
+    require_columns,
+    score_parts,
+    text,
+)
+from screens._leads import DISPLAY_ORDER, PRECORDIAL, lead_names, wide
+from screens.criteria import Rules, load_rules
+
+SCREEN = "hyperkalemia"
+REQUIRED = ["ecg_id", "patient_id", "acquired_at", "k_mmol_l", "heart_rate_bpm", "pr_ms", "qrs_ms"]
+
+T_LIMB_LEADS = ["I", "II", "III", "aVL", "aVF"]  # aVR's T is normally inverted: not used for peaking
+T_LEADS = PRECORDIAL + T_LIMB_LEADS
+SIGN_NAMES = ("peaked_t", "qrs", "pr", "p_flat", "brady")
+
+CAVEAT_HEMOLYZED = (
+    "Haemolysed specimen: the potassium may be falsely high (pseudohyperkalaemia); "
+    "repeat the sample before acting on this value."
+)
+CAVEAT_NO_K = "No potassium measured in the lab window around this ECG; consider measuring one."
+CAVEAT_NO_PRIOR = "No prior ECG: growth of T, widening of QRS and lengthening of PR not assessed."
+CAVEAT_K_LOWERING = "Potassium-lowering treatment was recorded in the 24 h before the ECG."
+CAVEAT_NOT_EVALUABLE = "Not evaluable for lack of input: {signs}."
+
+BAND_WORDS = {3: "severe", 2: "moderate", 1: "mild", 0: ""}
+
+
+def screen_hyperkalemia(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | None = None) -> pd.DataFrame:
+    """Hyperkalemia findings for the aligned ECGs.
+
+    aligned: the aligned table (k_mmol_l, k_offset_min, k_hemolyzed, k_result_id, k_prev_mmol_l,
+    k_change_mmol_l, heart_rate_bpm, pr_ms, qrs_ms, prior_ecg_id, prior_pr_ms, prior_qrs_ms,
+    k_lowering_24h; K in mmol/L, intervals in ms). leads: ecg_lead rows (p_amp_uv, t_amp_uv in uV)
+    for these ECGs and their priors. Returns the findings frame (FINDING_COLUMNS).
+    """
+    if len(aligned) == 0:
+        return empty_findings()
+    require_columns(aligned, REQUIRED)
+    r = (rules or load_rules())[SCREEN]
+    n = len(aligned)
+
+    k = num(aligned, "k_mmol_l")
+    hr = num(aligned, "heart_rate_bpm")
+    pr, prior_pr = num(aligned, "pr_ms"), num(aligned, "prior_pr_ms")
+    qrs, prior_qrs = num(aligned, "qrs_ms"), num(aligned, "prior_qrs_ms")
+    hemolyzed, _ = flag(aligned, "k_hemolyzed")
+    prior_ids = text(aligned, "prior_ecg_id")
+    has_prior = np.array([p is not None for p in prior_ids], dtype=bool)
+
+    now = wide(leads, aligned["ecg_id"].to_numpy(), ["t_amp_uv", "p_amp_uv"])
+    before = wide(leads, np.array([p if p is not None else "" for p in prior_ids], dtype=object), ["t_amp_uv"])
+    t_now, t_prior = now["t_amp_uv"][T_LEADS], before["t_amp_uv"][T_LEADS]
+    p_ii = now["p_amp_uv"]["II"].to_numpy()
+
+    # ---- potassium bands [UKKA-2020]
+    severe = r["k_severe"].met(k)
+    moderate = r["k_moderate"].met(k) & ~severe
+    mild = r["k_mild"].met(k) & ~severe & ~moderate
+    k_known = ~np.isnan(k)
+    band = np.select([severe, moderate, mild], [3, 2, 1], 0)
+
+    # ---- ECG signs [PRACTICE; changes against the prior: LOCAL]
+    peak_prec = r["t_peaked_precordial"].met(t_now[PRECORDIAL])
+    peak_limb = r["t_peaked_limb"].met(t_now[T_LIMB_LEADS])
+    peak_leads = pd.concat([peak_prec, peak_limb], axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        growth_pct = (t_now - t_prior) / t_prior * 100.0
+    growth_ok = r["t_growth_min_prior"].met(t_prior)
+    grown_leads = r["t_growth"].met(growth_pct.where(growth_ok))
+    sign_peaked = peak_leads.any(axis=1).to_numpy() | grown_leads.any(axis=1).to_numpy()
+    eval_peaked = t_now.notna().any(axis=1).to_numpy()
+
+    qrs_wide = r["qrs_wide"].met(qrs)
+    qrs_widened = r["qrs_widened"].met(qrs - prior_qrs)
+    sign_qrs = qrs_wide | qrs_widened
+    eval_qrs = ~np.isnan(qrs)
+
+    pr_long = r["pr_long"].met(pr)
+    pr_lengthened = r["pr_lengthened"].met(pr - prior_pr)
+    sign_pr = pr_long | pr_lengthened
+    eval_pr = ~np.isnan(pr)
+
+    sign_pflat = r["p_flat_ii"].met(np.abs(p_ii))
+    eval_pflat = ~np.isnan(p_ii)
+
+    sign_brady = r["bradycardia"].met(hr)
+    eval_brady = ~np.isnan(hr)
+
+    signs = np.column_stack([sign_peaked, sign_qrs, sign_pr, sign_pflat, sign_brady])
+    evaluable = np.column_stack([eval_peaked, eval_qrs, eval_pr, eval_pflat, eval_brady])
+    n_signs = signs.sum(axis=1)
+    any_sign = n_signs > 0
+
+    # ---- tiers
+    tier = np.select(
+        [
+            severe & any_sign,
+            severe | (moderate & any_sign),
+            moderate | (mild & any_sign),
+            mild,
+            ~k_known & (n_signs >= int(r.setting("no_k_signs_for_tier3"))),
+            ~k_known & any_sign,
+        ],
+        [1, 2, 3, 4, 3, 4],
+        NO_FINDING,
+    )
+    # A haemolysed specimen without ECG signs ranks below the same value unhaemolysed.
+    demote = k_known & hemolyzed & ~any_sign & (tier < NO_FINDING)
+    tier = np.where(demote, np.minimum(tier + 1, 4), tier)
+
+    k_part = np.clip((k - r["k_mild"].value) / 2.0, 0.0, 1.0)
+    severity = np.where(k_known, 0.7 * np.nan_to_num(k_part) + 0.3 * n_signs / 5.0, n_signs / 5.0)
+    severity = np.where(demote, severity * 0.5, severity)
+
+    hit = np.flatnonzero(tier < NO_FINDING)
+    if len(hit) == 0:
+        return empty_findings()
+
+    # ---- evidence, only for the flagged rows
+    k_off = num(aligned, "k_offset_min")
+    k_prev, k_change = num(aligned, "k_prev_mmol_l"), num(aligned, "k_change_mmol_l")
+    k_ids = text(aligned, "k_result_id")
+    k_lowering, _ = flag(aligned, "k_lowering_24h")
+    prior_qrs_known = ~np.isnan(prior_qrs)
+    rows = aligned.iloc[hit]
+    parts, summaries, evidence, caveats = [], [], [], []
+    for i in hit:
+        sign_state = {
+            name: (bool(signs[i, j]) if evaluable[i, j] or signs[i, j] else None)
+            for j, name in enumerate(SIGN_NAMES)
+        }
+        t_peak_names = lead_names(peak_leads, i)
+        t_grown_names = lead_names(grown_leads, i)
+        t_max = np.nanmax(t_now.iloc[i].to_numpy()) if eval_peaked[i] else np.nan
+
+        words = []
+        if k_known[i]:
+            kw = f"K {fmt(k[i], 1)} mmol/L ({BAND_WORDS[band[i]]}) collected {fmt_offset(k_off[i])}"
+            if hemolyzed[i]:
+                kw += ", haemolysed"
+            if not np.isnan(k_prev[i]):
+                kw += f" (previous {fmt(k_prev[i], 1)})"
+            words.append(kw)
+        else:
+            words.append("No potassium in the lab window")
+        sign_words = []
+        if sign_qrs[i]:
+            sign_words.append(f"QRS {fmt(qrs[i])} ms" + (f" (prior {fmt(prior_qrs[i])} ms)" if prior_qrs_known[i] else ""))
+        if sign_peaked[i]:
+            if t_peak_names:
+                tmax_mv = np.nanmax(t_now.iloc[i][t_peak_names].to_numpy()) / 1000.0
+                sign_words.append(f"T up to {fmt(tmax_mv, 1)} mV in {fmt_leads(t_peak_names, DISPLAY_ORDER)}")
+            if t_grown_names:
+                g = np.nanmax(growth_pct.iloc[i][t_grown_names].to_numpy())
+                sign_words.append(f"T grown up to {fmt(g)} % since the prior ECG in {fmt_leads(t_grown_names, DISPLAY_ORDER)}")
+        if sign_pr[i]:
+            sign_words.append(f"PR {fmt(pr[i])} ms" + (f" (prior {fmt(prior_pr[i])} ms)" if not np.isnan(prior_pr[i]) else ""))
+        if sign_pflat[i]:
+            sign_words.append(f"P in II flat ({fmt(p_ii[i])} uV)")
+        if sign_brady[i]:
+            sign_words.append(f"heart rate {fmt(hr[i])} bpm")
+        if sign_words:
+            words.extend(sign_words)
+        elif k_known[i]:
+            words.append("no ECG signs of hyperkalaemia (the ECG is insensitive)")
+        if not k_known[i]:
+            words.append("suggest measuring potassium")
+        summaries.append("; ".join(words))
+
+        cav = []
+        if k_known[i] and hemolyzed[i]:
+            cav.append(CAVEAT_HEMOLYZED)
+        if not k_known[i]:
+            cav.append(CAVEAT_NO_K)
+        if not has_prior[i]:
+            cav.append(CAVEAT_NO_PRIOR)
+        unknown = [name for name, state in sign_state.items() if state is None]
+        if unknown:
+            cav.append(CAVEAT_NOT_EVALUABLE.format(signs=", ".join(unknown)))
+        if k_lowering[i]:
+            cav.append(CAVEAT_K_LOWERING)
+        caveats.append(cav)
+
+        rules_fired = fired(
+            (r["k_severe"], severe[i]),
+            (r["k_moderate"], moderate[i]),
+            (r["k_mild"], mild[i]),
+            (r["t_peaked_precordial"], bool(peak_prec.iloc[i].any())),
+            (r["t_peaked_limb"], bool(peak_limb.iloc[i].any())),
+            (r["t_growth"], bool(t_grown_names)),
+            (r["qrs_wide"], qrs_wide[i]),
+            (r["qrs_widened"], qrs_widened[i]),
+            (r["pr_long"], pr_long[i]),
+            (r["pr_lengthened"], pr_lengthened[i]),
+            (r["p_flat_ii"], sign_pflat[i]),
+            (r["bradycardia"], sign_brady[i]),
+        )
+        evidence.append(
+            {
+                "values": {
+                    "k_mmol_l": k[i],
+                    "k_band": BAND_WORDS[band[i]] or None,
+                    "k_offset_min": k_off[i],
+                    "k_hemolyzed": bool(hemolyzed[i]),
+                    "k_result_id": k_ids[i],
+                    "k_prev_mmol_l": k_prev[i],
+                    "k_change_mmol_l": k_change[i],
+                    "heart_rate_bpm": hr[i],
+                    "pr_ms": pr[i],
+                    "prior_pr_ms": prior_pr[i],
+                    "qrs_ms": qrs[i],
+                    "prior_qrs_ms": prior_qrs[i],
+                    "p_ii_uv": p_ii[i],
+                    "t_max_uv": t_max,
+                    "t_peaked_leads": t_peak_names,
+                    "t_grown_leads": t_grown_names,
+                    "prior_ecg_id": prior_ids[i],
+                    "k_lowering_24h": bool(k_lowering[i]),
+                },
+                "signs": sign_state,
+                "rules": rules_fired,
+            }
+        )
+        parts.append(
+            score_parts(
+                severity=severity[i],
+                lab_confirmed=k_known[i] and not hemolyzed[i] and band[i] > 0,
+                lab_gap_min=k_off[i] if k_known[i] else np.nan,
+                trend=k_change[i],
+                prior_present=has_prior[i],
+                sign_count=int(n_signs[i]),
+                hemolyzed=int(k_known[i] and hemolyzed[i]),
+            )
+        )
+
+    return build_findings(
+        rows,
+        screen=SCREEN,
+        rule_version=r.version,
+        tier=tier[hit],
+        parts=parts,
+        summary=summaries,
+        evidence=evidence,
+        caveats=caveats,
+    )

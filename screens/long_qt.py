@@ -1,0 +1,407 @@
+"""Long-QT risk: ECGs whose rate-corrected QT crosses a published limit or rose sharply.
+
+What it flags
+    - prolonged QTc: >= 450 ms men, >= 460 ms women (AHA-2009-IV);
+    - high risk: QTc > 500 ms, or a rise of > 60 ms from the prior ECG (AHA-2010-TDP);
+    - (setting report_not_evaluable) an ECG with no usable QT, or neither RR nor heart rate:
+      a tier-4 "not evaluable" finding, never a silent pass.
+
+QT correction (RR in s, QT in ms), all four always in the evidence:
+    Bazett      QT / RR^(1/2)                  [BAZETT-1920]
+    Fridericia  QT / RR^(1/3)                  [FRID-1920]
+    Framingham  QT + 154 * (1 - RR)            [SAGIE-1992]
+    Hodges      QT + 1.75 * (HR - 60)          [HODGES-1983]
+    The deciding one is the setting `qtc_formula`, Fridericia by default: Bazett over-corrects
+    at fast rates (AHA-2009-IV advises against it). RR is the machine's rr_ms (derived from the
+    rate when absent) and the Hodges HR is 60000 / rr_ms, so the four agree exactly at 60 bpm.
+    With QRS >= 120 ms the QT holds a long depolarisation: we correct the Bogossian modified
+    QT = QT - 0.485 * QRS [BOGOSSIAN-2014] and say so; JT = QT - QRS is in the evidence too,
+    but it is not compared with QTc limits (it has its own, which we do not ship).
+    The rise compares like with like: the prior ECG's QTc by the same formula and adjustment.
+
+Risk modifiers (any one counts)
+    K < 3.5 mmol/L, Mg < 0.70 mmol/L, total Ca < 2.10 mmol/L (PRACTICE), heart rate < 50 bpm,
+    female sex, age >= 68 y (TISDALE-2013), a QT-prolonging drug or a loop diuretic given in
+    the previous 24 h (the site's own drug classes, site config [drugs]).
+
+Tiers (1 most urgent)
+    1  QTc > 500 ms with a modifier
+    2  QTc > 500 ms, or a rise > 60 ms from the prior ECG
+    3  prolonged with a modifier
+    4  prolonged alone; not evaluable
+
+Tisdale et al. 2013 score, from the inputs present [TISDALE-2013]
+    age >= 68 y 1; female 1; loop diuretic 1; K <= 3.5 mmol/L 2; QTc >= 450 ms 2; acute MI 2;
+    one QT-prolonging drug 3, two or more 6; sepsis 3; heart failure 3 (max 21;
+    low 0-6, moderate 7-10, high >= 11). Acute MI, sepsis and heart failure are not in the
+    lake, so the score is always "partial" and lists what is missing; the band named is a
+    lower bound ("at least moderate", "low on the inputs present") unless even the maximum
+    of the missing items could not change it. We use this ECG's deciding QTc for the admission QTc item.
+    Wording kept as each source has it: the issue's K modifier is "< 3.5" (hypokalaemia,
+    PRACTICE) while Tisdale's table is "<= 3.5"; both are in rules.toml under their own keys.
+    (Tisdale's abstract words the items "> 68 y", "< 3.5", "> 450"; the scoring table, which
+    REFERENCES.md and calculators reproduce, uses ">=" / "<=" and is what we follow.)
+
+Unknown sex: the men's limit (450 ms), the more sensitive, with a caveat; the Tisdale female
+item is then missing. Unknown age: the Tisdale age item is missing; the age modifier is unmet.
+
+Caveats: heart rate outside 50-100 bpm (correction unreliable, PRACTICE); irregular rhythm
+suspected (no PR, and the machine's rate and mean RR disagree by > 10 %, a LOCAL proxy since
+the lake holds no beat-to-beat RR); wide QRS (QT adjusted); paced rhythm; unknown sex.
+
+score_parts
+    severity       0.7 * max((QTc - limit) / 100 ms, (rise - 60) / 60 ms) clipped to 0..1
+                   + 0.3 * min(modifiers, 3) / 3
+    lab_confirmed  1 when a lab modifier (low K, Mg or Ca) is present
+    lab_gap_min    |offset| of the closest lab that made a modifier (null if none)
+    trend          QTc rise from the prior ECG in ms (signed; null without a prior QTc)
+    prior_present  1 when a prior ECG exists
+    troponin_ratio null (not used here)
+    qtc_ms, modifier_count, tisdale_points  extra parts
+
+Sources (citations in screens/rules.toml [sources])
+    AHA-2009-IV     Rautaharju PM, Surawicz B, Gettes LS. AHA/ACCF/HRS recommendations for the
+                    standardization and interpretation of the electrocardiogram, part IV.
+                    Circulation 2009;119:e241-e250.
+    AHA-2010-TDP    Drew BJ, Ackerman MJ, Funk M, et al. Prevention of torsade de pointes in
+                    hospital settings. Circulation 2010;121:1047-1060.
+    BAZETT-1920     Bazett HC. Heart 1920;7:353-370.
+    FRID-1920       Fridericia LS. Acta Med Scand 1920;53:469-486.
+    SAGIE-1992      Sagie A, Larson MG, Goldberg RJ, et al. Am J Cardiol 1992;70:797-801.
+    HODGES-1983     Hodges M, Salerno D, Erlien D. J Am Coll Cardiol 1983;1:694 (abstract).
+    BOGOSSIAN-2014  Bogossian H, Frommeyer G, Ninios I, et al. Heart Rhythm 2014;11:2273-2277
+                    (coefficient 0.485 from memory).
+    TISDALE-2013    Tisdale JE, Jaynes HA, Kingery JR, et al. Circ Cardiovasc Qual Outcomes
+                    2013;6:479-487 (points checked against secondary calculator pages).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from screens._frame import (
+    NO_FINDING,
+    build_findings,
+    empty_findings,
+    fired,
+    flag,
+    fmt,
+    num,
+    require_columns,
+    score_parts,
+    sex_masks,
+    text,
+    age_years,
+)
+from screens.criteria import Rules, load_rules
+
+SCREEN = "long_qt"
+REQUIRED = ["ecg_id", "patient_id", "acquired_at", "qt_ms", "rr_ms", "heart_rate_bpm", "qrs_ms", "pr_ms"]
+
+BOGOSSIAN_QRS_FACTOR = 0.485  # [BOGOSSIAN-2014]: modified QT = QT - 0.485 * QRS
+FRAMINGHAM_SLOPE_MS = 154.0  # [SAGIE-1992]
+HODGES_SLOPE_MS_PER_BPM = 1.75  # [HODGES-1983]
+
+FORMULA_NAMES = {"bazett": "Bazett", "fridericia": "Fridericia", "framingham": "Framingham", "hodges": "Hodges"}
+
+# [TISDALE-2013] points; items the lake cannot supply are always listed as missing.
+TISDALE_POINTS = {
+    "age_68_or_more": 1,
+    "female": 1,
+    "loop_diuretic": 1,
+    "k_3_5_or_less": 2,
+    "qtc_450_or_more": 2,
+    "acute_mi": 2,
+    "qt_drugs": 6,  # 3 for one drug, 6 for two or more; 6 is the most a missing item could add
+    "sepsis": 3,
+    "heart_failure": 3,
+}
+TISDALE_NOT_IN_LAKE = ("acute_mi", "sepsis", "heart_failure")
+
+CAVEAT_RATE = "Heart rate {hr} bpm is outside 50-100 bpm, where rate correction of QT is reliable; read the measured QT too."
+CAVEAT_IRREGULAR = (
+    "No PR interval and the rate and mean RR disagree: an irregular rhythm (e.g. atrial fibrillation) is "
+    "suspected; a QTc from a mean RR is unreliable."
+)
+CAVEAT_WIDE = (
+    "QRS {qrs} ms: QT adjusted for the wide QRS by the Bogossian modified QT (QT - 0.485 x QRS), "
+    "derived in left bundle branch block."
+)
+CAVEAT_PACED = "Paced rhythm: the QT includes paced depolarisation."
+CAVEAT_SEX_UNKNOWN = "Sex unknown: the men's limit (450 ms), the more sensitive, was used."
+CAVEAT_NOT_EVALUABLE = "QTc not evaluable: {what} missing."
+
+
+def qtc_all(qt_ms: np.ndarray, rr_ms: np.ndarray) -> dict[str, np.ndarray]:
+    """QTc in ms by the four formulas, from QT (ms) and RR (ms); NaN where an input is missing."""
+    rr_s = np.asarray(rr_ms, dtype=float) / 1000.0
+    qt = np.asarray(qt_ms, dtype=float)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        hr = 60.0 / rr_s
+        return {
+            "bazett": qt / np.sqrt(rr_s),  # [BAZETT-1920]
+            "fridericia": qt / np.cbrt(rr_s),  # [FRID-1920]
+            "framingham": qt + FRAMINGHAM_SLOPE_MS * (1.0 - rr_s),  # [SAGIE-1992]
+            "hodges": qt + HODGES_SLOPE_MS_PER_BPM * (hr - 60.0),  # [HODGES-1983]
+        }
+
+
+def _rr(aligned: pd.DataFrame, rr_col: str, hr_col: str) -> np.ndarray:
+    rr, hr = num(aligned, rr_col), num(aligned, hr_col)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        derived = np.where(hr > 0, 60000.0 / hr, np.nan)
+    rr = np.where(np.isnan(rr), derived, rr)
+    return np.where(rr > 0, rr, np.nan)
+
+
+def screen_long_qt(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | None = None) -> pd.DataFrame:
+    """Long-QT risk findings for the aligned ECGs.
+
+    aligned: the aligned table (qt_ms, rr_ms, heart_rate_bpm, qrs_ms, pr_ms, paced, sex, age_years,
+    k/mg/ca_mmol_l and offsets, prior_qt_ms, prior_rr_ms, prior_heart_rate_bpm, prior_qrs_ms,
+    qt_drug_count_24h, loop_diuretic_24h). leads: unused (the QT screen reads global intervals).
+    Returns the findings frame (FINDING_COLUMNS).
+    """
+    if len(aligned) == 0:
+        return empty_findings()
+    require_columns(aligned, REQUIRED)
+    r = (rules or load_rules())[SCREEN]
+    formula = r.setting("qtc_formula")
+
+    qt, qrs, pr = num(aligned, "qt_ms"), num(aligned, "qrs_ms"), num(aligned, "pr_ms")
+    rr = _rr(aligned, "rr_ms", "heart_rate_bpm")
+    hr_measured = num(aligned, "heart_rate_bpm")
+    with np.errstate(invalid="ignore", divide="ignore"):
+        hr = np.where(np.isnan(hr_measured), 60000.0 / rr, hr_measured)
+    female, male, sex_unknown = sex_masks(aligned)
+    age = age_years(aligned)
+    paced, _ = flag(aligned, "paced")
+
+    # ---- QRS-adjusted QT [BOGOSSIAN-2014]
+    wide = r["qrs_wide"].met(qrs)
+    qt_used = np.where(wide, qt - BOGOSSIAN_QRS_FACTOR * qrs, qt)
+    qtc = qtc_all(qt_used, rr)
+    qtc_raw = qtc_all(qt, rr)
+    decide = qtc[formula]
+
+    prior_qrs = num(aligned, "prior_qrs_ms")
+    prior_qt = num(aligned, "prior_qt_ms")
+    prior_rr = _rr(aligned, "prior_rr_ms", "prior_heart_rate_bpm")
+    prior_wide = r["qrs_wide"].met(prior_qrs)
+    prior_qt_used = np.where(prior_wide, prior_qt - BOGOSSIAN_QRS_FACTOR * prior_qrs, prior_qt)
+    prior_decide = qtc_all(prior_qt_used, prior_rr)[formula]
+    rise = decide - prior_decide
+
+    # ---- prolonged [AHA-2009-IV]; unknown sex takes the men's (more sensitive) limit
+    prolonged = np.where(female, r["qtc_prolonged_f"].met(decide), r["qtc_prolonged_m"].met(decide))
+    limit = np.where(female, r["qtc_prolonged_f"].value, r["qtc_prolonged_m"].value)
+    # ---- high risk [AHA-2010-TDP]
+    high = r["qtc_high_risk"].met(decide)
+    rose = r["qtc_rise"].met(rise)
+
+    # ---- risk modifiers
+    k, mg, ca = num(aligned, "k_mmol_l"), num(aligned, "mg_mmol_l"), num(aligned, "ca_mmol_l")
+    k_off, mg_off, ca_off = num(aligned, "k_offset_min"), num(aligned, "mg_offset_min"), num(aligned, "ca_offset_min")
+    drugs = num(aligned, "qt_drug_count_24h")
+    loop, loop_known = flag(aligned, "loop_diuretic_24h")
+    mod = {
+        "k_low": r["k_low"].met(k),
+        "mg_low": r["mg_low"].met(mg),
+        "ca_low": r["ca_low"].met(ca),
+        "bradycardia": r["bradycardia"].met(hr),
+        "female": female,
+        "age_older": r["age_older"].met(age),
+        "qt_drug": drugs >= 1,
+        "loop_diuretic": loop,
+    }
+    mods = np.column_stack(list(mod.values()))
+    n_mods = mods.sum(axis=1)
+    any_mod = n_mods > 0
+
+    evaluable = ~np.isnan(decide)
+    report_ne = bool(r.setting("report_not_evaluable"))
+    tier = np.select(
+        [high & any_mod, high | rose, prolonged & any_mod, prolonged, ~evaluable & report_ne],
+        [1, 2, 3, 4, 4],
+        NO_FINDING,
+    )
+
+    # ---- Tisdale 2013, from the inputs present
+    age_known, sex_known, k_known = ~np.isnan(age), ~sex_unknown, ~np.isnan(k)
+    drugs_known = ~np.isnan(drugs)
+    t_items = {
+        "age_68_or_more": (np.where(r["tisdale_age"].met(age), 1, 0), age_known),
+        "female": (np.where(female, 1, 0), sex_known),
+        "loop_diuretic": (np.where(loop, 1, 0), loop_known),
+        "k_3_5_or_less": (np.where(r["tisdale_k"].met(k), 2, 0), k_known),
+        "qtc_450_or_more": (np.where(r["tisdale_qtc"].met(decide), 2, 0), evaluable),
+        "qt_drugs": (np.select([drugs >= 2, drugs >= 1], [6, 3], 0), drugs_known),
+    }
+    t_points = sum(np.where(known, pts, 0) for pts, known in t_items.values())
+    t_missing_max = sum(np.where(known, 0, TISDALE_POINTS[name]) for name, (_, known) in t_items.items()) + sum(
+        TISDALE_POINTS[name] for name in TISDALE_NOT_IN_LAKE
+    )
+
+    # ---- severity
+    with np.errstate(invalid="ignore"):
+        qtc_part = np.clip((decide - limit) / 100.0, 0.0, 1.0)
+        rise_part = np.clip((rise - r["qtc_rise"].value) / 60.0, 0.0, 1.0)
+    severity = 0.7 * np.fmax(np.nan_to_num(qtc_part), np.nan_to_num(rise_part)) + 0.3 * np.minimum(n_mods, 3) / 3.0
+
+    hit = np.flatnonzero(tier < NO_FINDING)
+    if len(hit) == 0:
+        return empty_findings()
+
+    # ---- evidence, only for the flagged rows
+    rate_odd = r["hr_correction_low"].met(hr) | r["hr_correction_high"].met(hr)
+    rr_hr = num(aligned, "rr_ms") * hr_measured / 60000.0
+    with np.errstate(invalid="ignore"):
+        mismatch_pct = np.abs(rr_hr - 1.0) * 100.0
+    irregular = np.isnan(pr) & r["rr_hr_mismatch"].met(mismatch_pct)
+    prior_ids = text(aligned, "prior_ecg_id")
+    rows = aligned.iloc[hit]
+    fname = FORMULA_NAMES[formula]
+    parts, summaries, evidence, caveats = [], [], [], []
+    for i in hit:
+        mod_words = []
+        if mod["k_low"][i]:
+            mod_words.append(f"K {fmt(k[i], 1)} mmol/L")
+        if mod["mg_low"][i]:
+            mod_words.append(f"Mg {fmt(mg[i], 2)} mmol/L")
+        if mod["ca_low"][i]:
+            mod_words.append(f"Ca {fmt(ca[i], 2)} mmol/L")
+        if mod["bradycardia"][i]:
+            mod_words.append(f"heart rate {fmt(hr[i])} bpm")
+        if mod["female"][i]:
+            mod_words.append("female")
+        if mod["age_older"][i]:
+            mod_words.append(f"age {fmt(age[i])} y")
+        if mod["qt_drug"][i]:
+            mod_words.append(f"{int(drugs[i])} QT-prolonging drug(s) in 24 h")
+        if mod["loop_diuretic"][i]:
+            mod_words.append("loop diuretic in 24 h")
+
+        missing = [name for name, (_, known) in t_items.items() if not known[i]] + list(TISDALE_NOT_IN_LAKE)
+        pts = int(t_points[i])
+        most = pts + int(t_missing_max[i])
+        if pts >= r["tisdale_high"].value:
+            band = "high"
+        elif most < r["tisdale_moderate"].value:
+            band = "low"
+        elif pts >= r["tisdale_moderate"].value:
+            band = "moderate" if most < r["tisdale_high"].value else "at least moderate"
+        else:
+            band = "low on the inputs present"
+        tisdale = {
+            "points": pts,
+            "partial": bool(missing),
+            "missing": missing,
+            "max_possible": most,
+            "band": band,
+            "items": {name: (int(p[i]) if known[i] else None) for name, (p, known) in t_items.items()},
+        }
+
+        if not evaluable[i]:
+            what = "QT interval" if np.isnan(qt[i]) else "RR interval and heart rate"
+            summaries.append(f"QTc not evaluable: {what} missing")
+            caveats.append([CAVEAT_NOT_EVALUABLE.format(what=what)])
+        else:
+            qt_words = f"QT {fmt(qt[i])} ms" if not wide[i] else f"Bogossian-adjusted QT {fmt(qt_used[i])} ms, QRS {fmt(qrs[i])} ms"
+            words = [f"QTc {fmt(decide[i])} ms ({fname}; {qt_words}, heart rate {fmt(hr[i])} bpm)"]
+            if high[i]:
+                words[0] += f", above {fmt(r['qtc_high_risk'].value)} ms"
+            elif prolonged[i]:
+                words[0] += f", at or above the {fmt(limit[i])} ms limit"
+            if not np.isnan(prior_decide[i]):
+                words.append(f"prior {fmt(prior_decide[i])} ms ({'+' if rise[i] >= 0 else ''}{fmt(rise[i])} ms)")
+            words.append("modifiers: " + ", ".join(mod_words) if mod_words else "no risk modifiers")
+            words.append(f"Tisdale {pts} ({'partial, ' if missing else ''}{band})")
+            summaries.append("; ".join(words))
+            cav = []
+            if rate_odd[i]:
+                cav.append(CAVEAT_RATE.format(hr=fmt(hr[i])))
+            if irregular[i]:
+                cav.append(CAVEAT_IRREGULAR)
+            if wide[i]:
+                cav.append(CAVEAT_WIDE.format(qrs=fmt(qrs[i])))
+            if paced[i]:
+                cav.append(CAVEAT_PACED)
+            if sex_unknown[i]:
+                cav.append(CAVEAT_SEX_UNKNOWN)
+            caveats.append(cav)
+
+        rules_fired = fired(
+            (r["qtc_prolonged_f"], female[i] and prolonged[i]),
+            (r["qtc_prolonged_m"], (not female[i]) and prolonged[i]),
+            (r["qtc_high_risk"], high[i]),
+            (r["qtc_rise"], rose[i]),
+            (r["qrs_wide"], wide[i]),
+            (r["k_low"], mod["k_low"][i]),
+            (r["mg_low"], mod["mg_low"][i]),
+            (r["ca_low"], mod["ca_low"][i]),
+            (r["bradycardia"], mod["bradycardia"][i]),
+            (r["age_older"], mod["age_older"][i]),
+            (r["hr_correction_low"], r["hr_correction_low"].met(hr[i])),
+            (r["hr_correction_high"], r["hr_correction_high"].met(hr[i])),
+            (r["rr_hr_mismatch"], irregular[i]),
+        )
+        lab_gaps = [abs(off[i]) for name, off in (("k_low", k_off), ("mg_low", mg_off), ("ca_low", ca_off)) if mod[name][i]]
+        evidence.append(
+            {
+                "values": {
+                    "qt_ms": qt[i],
+                    "rr_ms": rr[i],
+                    "heart_rate_bpm": hr[i],
+                    "qrs_ms": qrs[i],
+                    "pr_ms": pr[i],
+                    "qt_adjustment": "bogossian" if wide[i] else None,
+                    "qt_used_ms": qt_used[i],
+                    "jt_ms": qt[i] - qrs[i],
+                    "qtc_formula": formula,
+                    "qtc_ms": decide[i],
+                    "qtc_bazett_ms": qtc["bazett"][i],
+                    "qtc_fridericia_ms": qtc["fridericia"][i],
+                    "qtc_framingham_ms": qtc["framingham"][i],
+                    "qtc_hodges_ms": qtc["hodges"][i],
+                    "qtc_unadjusted_ms": qtc_raw[formula][i] if wide[i] else None,
+                    "qtc_limit_ms": limit[i],
+                    "sex": "F" if female[i] else ("M" if male[i] else None),
+                    "age_years": age[i],
+                    "prior_ecg_id": prior_ids[i],
+                    "prior_qtc_ms": prior_decide[i],
+                    "qtc_rise_ms": rise[i],
+                    "k_mmol_l": k[i],
+                    "mg_mmol_l": mg[i],
+                    "ca_mmol_l": ca[i],
+                    "qt_drug_count_24h": drugs[i],
+                    "loop_diuretic_24h": bool(loop[i]) if loop_known[i] else None,
+                    "modifiers": [name for name in mod if mod[name][i]],
+                },
+                "tisdale": tisdale,
+                "rules": rules_fired,
+            }
+        )
+        parts.append(
+            score_parts(
+                severity=severity[i],
+                lab_confirmed=bool(lab_gaps),
+                lab_gap_min=min(lab_gaps) if lab_gaps else np.nan,
+                trend=rise[i],
+                prior_present=prior_ids[i] is not None,
+                qtc_ms=decide[i],
+                modifier_count=int(n_mods[i]),
+                tisdale_points=pts,
+            )
+        )
+
+    return build_findings(
+        rows,
+        screen=SCREEN,
+        rule_version=r.version,
+        tier=tier[hit],
+        parts=parts,
+        summary=summaries,
+        evidence=evidence,
+        caveats=caveats,
+    )

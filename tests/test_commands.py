@@ -1,0 +1,139 @@
+"""The worklist sub-commands: review, yield, export, show (registered on a bare argparse parser,
+as the CLI does)."""
+import argparse
+import json
+import subprocess
+import sys
+
+import pandas as pd
+import pytest
+
+from pipeline import commands
+from pipeline.store import OUTCOMES, open_store, read_items, sqlite_url, upsert_items
+from pipeline.worklist import FINDING_COLUMNS, build_items, write_parquet_atomic
+
+NIGHT = pd.Timestamp("2026-03-02 02:00", tz="UTC")
+
+
+def parser():
+    p = argparse.ArgumentParser(prog="cardiosieve")
+    commands.register(p.add_subparsers(dest="command", required=True))
+    return p
+
+
+def run(capsys, *argv):
+    args = parser().parse_args([str(a) for a in argv])
+    code = args.handler(args)
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def finding(ecg_id, patient_id, tier=2, severity=0.5, summary=None):
+    return {"ecg_id": ecg_id, "patient_id": patient_id, "acquired_at": pd.Timestamp("2026-03-01 20:00", tz="UTC"),
+            "screen": "hyperkalemia", "tier": tier,
+            "score_parts": json.dumps({"severity": severity, "lab_confirmed": 1, "lab_gap_min": 30}),
+            "summary": summary or f"potassium high on {ecg_id}", "evidence": "{}", "caveats": "[]",
+            "territories": "", "rule_version": "hyperkalemia/1.0.0"}
+
+
+@pytest.fixture
+def out(tmp_path):
+    """An OUT folder with a worklist in OUT/worklist.sqlite and OUT/worklist.parquet."""
+    f = pd.DataFrame([finding("e1", "pat-A", tier=1), finding("e2", "pat-B"), finding("e3", "pat-C", severity=0.9)],
+                     columns=FINDING_COLUMNS)
+    items = build_items(f, None, None, "run-1", NIGHT)
+    upsert_items(open_store(sqlite_url(tmp_path)), items)
+    write_parquet_atomic(items, tmp_path / "worklist.parquet")
+    return tmp_path
+
+
+def test_module_imports_only_the_standard_library_at_start_up():
+    code = ("import sys, pipeline.commands; "
+            "print(sorted(m for m in ('pandas', 'numpy', 'sqlalchemy', 'scipy', 'pyarrow') if m in sys.modules))")
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert done.stdout.strip() == "[]"
+
+
+def test_outcome_help_lists_exactly_the_stored_outcomes():
+    assert commands.OUTCOME_HELP.split(", ") == list(OUTCOMES)
+
+
+def test_register_adds_the_four_sub_commands():
+    for name in ("review", "yield", "export", "show"):
+        assert callable(parser().parse_args([name, "--db", "sqlite://"]).handler)
+
+
+def test_show_prints_the_caution_and_the_ranked_head(out, capsys):
+    code, text, _ = run(capsys, "show", "--out", out, "--limit", "2")
+    lines = text.splitlines()
+    assert code == 0
+    assert lines[0] == commands.CAUTION
+    assert lines[1].split() == commands.SHOW_COLUMNS
+    assert lines[3].split()[:5] == ["1", "1", "hyperkalemia", "open", "pat-A"]   # tier 1 first
+    assert lines[4].split()[:5] == ["2", "2", "hyperkalemia", "open", "pat-C"]   # then the higher score
+    assert lines[-1].startswith("2 of 3 items shown")
+
+
+def test_show_from_the_database_gives_the_same_rows_as_from_the_parquet(out, capsys):
+    _, from_file, _ = run(capsys, "show", "--out", out)
+    _, from_db, _ = run(capsys, "show", "--db", sqlite_url(out))
+    assert from_file == from_db
+
+
+def test_show_without_a_worklist_says_so(tmp_path, capsys):
+    code, _, err = run(capsys, "show", "--out", tmp_path)
+    assert code == 2 and "no worklist" in err
+
+
+def test_review_closes_the_item_and_show_hides_it(out, capsys):
+    top = read_items(open_store(sqlite_url(out))).iloc[0]["item_id"]
+    code, text, _ = run(capsys, "review", top, "--outcome", "confirmed", "--role", "registrar",
+                        "--at", "2026-03-02T09:00:00Z", "--out", out)
+    assert code == 0 and "item closed" in text and "pat-" not in text
+    _, shown, _ = run(capsys, "show", "--db", sqlite_url(out))   # OUT/worklist.parquet is the night's copy
+    assert "pat-A" not in shown
+    _, shown_all, _ = run(capsys, "show", "--db", sqlite_url(out), "--include-closed")
+    assert "pat-A" in shown_all and "closed" in shown_all
+
+
+def test_review_with_unknown_outcome_fails_with_exit_2(out, capsys):
+    top = read_items(open_store(sqlite_url(out))).iloc[0]["item_id"]
+    code, _, err = run(capsys, "review", top, "--outcome", "perhaps", "--role", "registrar", "--out", out)
+    assert code == 2 and "unknown_outcome" in err
+
+
+def test_review_import_reports_rejects_by_line_and_exits_1(out, capsys, tmp_path):
+    top = read_items(open_store(sqlite_url(out))).iloc[0]["item_id"]
+    csv = tmp_path / "staff.csv"
+    csv.write_text(f"item_id,reviewed_at,reviewer_role,outcome\n{top},2026-03-02T09:00:00Z,nurse,confirmed\n"
+                   f"{top},2026-03-02T10:00:00Z,nurse,maybe\n")
+    code, text, _ = run(capsys, "review", "--import-csv", csv, "--out", out)
+    assert code == 1
+    assert "imported 1" in text and "rejected 1" in text
+    assert "rejected line 3: outcome: unknown_outcome" in text
+
+
+def test_yield_prints_a_table_per_screen_and_tier(out, capsys):
+    top = read_items(open_store(sqlite_url(out))).iloc[0]["item_id"]
+    run(capsys, "review", top, "--outcome", "confirmed", "--role", "registrar", "--at", "2026-03-02T04:00:00Z",
+        "--out", out)
+    code, text, _ = run(capsys, "yield", "--out", out)
+    rows = [line.split() for line in text.splitlines()]
+    assert code == 0 and rows[0][:4] == ["screen", "tier", "items", "reviewed"]
+    # tier 1: 1 item, reviewed and confirmed 2 h after the flag; Wilson 1/1 = 0.21 to 1.00
+    # (z^2/(1+z^2) = 0.2065, by hand).
+    assert rows[2] == ["hyperkalemia", "1", "1", "1", "1", "0", "1.00", "0.21-1.00", "2.0"]
+    assert rows[3][:4] == ["hyperkalemia", "2", "2", "0"] and rows[3][6] == "-"
+    assert "pat-" not in text
+
+
+def test_export_writes_csv_to_standard_output(out, capsys):
+    code, text, _ = run(capsys, "export", "--out", out, "--format", "csv")
+    assert code == 0
+    assert text.splitlines()[0].startswith("item_id,rank,tier,screen,patient_id")
+    assert len(text.splitlines()) == 4
+
+
+def test_store_commands_need_db_or_out(capsys):
+    code, _, err = run(capsys, "yield")
+    assert code == 2 and "--db" in err

@@ -1,0 +1,319 @@
+"""The worklist in SQL: upsert, reopen rule, reviews, CSV import, yield, export.
+
+SQLite always; PostgreSQL when CARDIOSIEVE_TEST_PG_URL is set (.ci/run starts a throwaway
+server and sets it, e.g. postgresql+psycopg://cardiosieve@127.0.0.1:PORT/cardiosieve_test)."""
+import io
+import json
+import os
+
+import pandas as pd
+import pytest
+from sqlalchemy import text
+
+from pipeline.store import (metadata, export_items, import_reviews_csv, open_store, read_items, record_review,
+                            upsert_items, wilson_interval, worklist_item, yield_table)
+from pipeline.worklist import (FINDING_COLUMNS, STATUS_CLOSED, STATUS_OPEN, STATUS_REOPENED, build_items)
+
+PG_URL = os.environ.get("CARDIOSIEVE_TEST_PG_URL")
+needs_pg = pytest.mark.skipif(not PG_URL, reason="CARDIOSIEVE_TEST_PG_URL not set (no PostgreSQL server)")
+NIGHT1 = pd.Timestamp("2026-03-02 02:00", tz="UTC")
+NIGHT2 = pd.Timestamp("2026-03-03 02:00", tz="UTC")
+
+
+def finding(ecg_id="ecg-1", patient_id="pat-1", at="2026-03-01 20:00", screen="hyperkalemia", tier=2,
+            severity=0.5, summary=None):
+    return {"ecg_id": ecg_id, "patient_id": patient_id, "acquired_at": pd.Timestamp(at, tz="UTC"),
+            "screen": screen, "tier": tier,
+            "score_parts": json.dumps({"severity": severity, "lab_confirmed": 1, "lab_gap_min": 30}),
+            "summary": summary or f"finding on {ecg_id}",
+            "evidence": json.dumps({"rule_version": "x/1", "values": {}, "rules": []}),
+            "caveats": "[]", "territories": "", "rule_version": f"{screen}/1.0.0"}
+
+
+def findings(*rows):
+    df = pd.DataFrame(list(rows), columns=FINDING_COLUMNS)
+    df["acquired_at"] = df["acquired_at"].astype("datetime64[us, UTC]")
+    return df
+
+
+def night(engine, rows, now=NIGHT1, run_id="run-1"):
+    """What the nightly stage does: read stored items of the patients, build, upsert."""
+    f = findings(*rows)
+    existing = read_items(engine, patient_ids=f["patient_id"].unique())
+    items = build_items(f, None, existing, run_id, now)
+    return items, upsert_items(engine, items)
+
+
+def fresh(url):
+    engine = open_store(url)
+    metadata.drop_all(engine)
+    metadata.create_all(engine)
+    return engine
+
+
+@pytest.fixture
+def sqlite_engine(tmp_path):
+    return open_store(f"sqlite:///{tmp_path / 'out' / 'worklist.sqlite'}")
+
+
+@pytest.fixture
+def pg_engine():
+    engine = fresh(PG_URL)
+    yield engine
+    metadata.drop_all(engine)
+    engine.dispose()
+
+
+@pytest.fixture(params=["sqlite", pytest.param("postgresql", marks=needs_pg)])
+def engine(request, tmp_path):
+    if request.param == "sqlite":
+        yield open_store(f"sqlite:///{tmp_path / 'worklist.sqlite'}")
+    else:
+        e = fresh(PG_URL)
+        yield e
+        metadata.drop_all(e)
+        e.dispose()
+
+
+def table(engine):
+    with engine.connect() as conn:
+        return pd.DataFrame(conn.execute(worklist_item.select().order_by(worklist_item.c.item_id)).mappings().all())
+
+
+FIRST = [finding("e1", "p1", "2026-03-01 10:00", tier=1, severity=0.7),
+         finding("e2", "p2", "2026-03-01 11:00", severity=0.4),
+         finding("e3", "p1", "2026-03-01 12:00", screen="long_qt", severity=0.2)]
+
+
+# --- upsert -----------------------------------------------------------------------------------
+def test_open_store_creates_sqlite_file_and_tables(tmp_path):
+    engine = open_store(f"sqlite:///{tmp_path / 'new' / 'worklist.sqlite'}")
+    assert (tmp_path / "new" / "worklist.sqlite").exists()
+    assert read_items(engine).empty
+
+
+def test_running_the_same_window_twice_gives_the_identical_table(engine):
+    _, counts1 = night(engine, FIRST)
+    before = table(engine)
+    _, counts2 = night(engine, FIRST, run_id="run-1-again")
+    assert counts1 == {"inserted": 3, "updated": 0, "reopened": 0, "unchanged": 0}
+    assert counts2 == {"inserted": 0, "updated": 0, "reopened": 0, "unchanged": 3}
+    pd.testing.assert_frame_equal(before, table(engine))
+
+
+def test_round_trip_keeps_values_and_utc_timestamps(engine):
+    items, _ = night(engine, FIRST)
+    back = read_items(engine).set_index("item_id").loc[items["item_id"]].reset_index()
+    pd.testing.assert_frame_equal(items.drop(columns="rank"), back.drop(columns="rank"))
+    assert str(back["ecg_at"].dtype) == "datetime64[us, UTC]"
+
+
+def test_missing_values_are_stored_as_null_not_nan(engine):
+    night(engine, FIRST)
+    with engine.connect() as conn:
+        nulls = conn.execute(text("SELECT COUNT(*) FROM worklist_item WHERE status_reason IS NULL")).scalar()
+    assert nulls == 3
+
+
+def test_rank_is_global_across_nights(engine):
+    night(engine, FIRST)
+    night(engine, [finding("e9", "p9", "2026-03-02 20:00", tier=1, severity=0.9)], now=NIGHT2, run_id="run-2")
+    ranked = read_items(engine)
+    assert ranked["rank"].tolist() == [1, 2, 3, 4]
+    assert ranked["ecg_id"].tolist()[:2] == ["e9", "e1"]   # both tier 1; e9 is more severe
+
+
+def test_next_night_updates_the_item_and_keeps_first_flagged_at(engine):
+    night(engine, FIRST)
+    items, counts = night(engine, [finding("e4", "p1", "2026-03-02 20:00", tier=1, severity=0.9)],
+                          now=NIGHT2, run_id="run-2")
+    assert counts == {"inserted": 0, "updated": 1, "reopened": 0, "unchanged": 0}
+    row = read_items(engine, patient_ids=["p1"], screens=["hyperkalemia"]).iloc[0]
+    assert row["ecg_id"] == "e4" and json.loads(row["other_ecg_ids"]) == ["e1"]
+    assert row["first_flagged_at"] == NIGHT1 and row["last_updated_at"] == NIGHT2 and row["run_id"] == "run-2"
+
+
+def test_closed_item_is_not_reopened_by_a_milder_finding(engine):
+    items, _ = night(engine, FIRST)
+    iid = items.set_index("ecg_id").loc["e1", "item_id"]
+    record_review(engine, iid, "not_confirmed", "registrar", None, pd.Timestamp("2026-03-02 08:00", tz="UTC"))
+    _, counts = night(engine, [finding("e5", "p1", "2026-03-02 20:00", tier=1, severity=0.5)], now=NIGHT2)
+    row = read_items(engine).set_index("item_id").loc[iid]
+    assert row["status"] == STATUS_CLOSED and row["status_reason"] == "reviewed: not_confirmed"
+    assert counts["reopened"] == 0
+
+
+def test_closed_item_reopens_for_a_more_severe_finding(engine):
+    items, _ = night(engine, FIRST)
+    iid = items.set_index("ecg_id").loc["e2", "item_id"]   # tier 2, severity 0.4
+    record_review(engine, iid, "not_confirmed", "registrar", None, pd.Timestamp("2026-03-02 08:00", tz="UTC"))
+    _, counts = night(engine, [finding("e6", "p2", "2026-03-02 20:00", tier=1, severity=0.5)], now=NIGHT2)
+    row = read_items(engine).set_index("item_id").loc[iid]
+    assert counts["reopened"] == 1
+    assert row["status"] == STATUS_REOPENED and "more severe" in row["status_reason"]
+    # Back among the active items: below e1 (tier 1, score 0.638611 against 0.562500 by the
+    # docs formula), above the tier-2 and long_qt items.
+    assert row["rank"] == 2
+
+
+def test_upsert_guards_the_reopen_rule_even_without_stored_items_given_to_build(engine):
+    items, _ = night(engine, FIRST)
+    iid = items.set_index("ecg_id").loc["e1", "item_id"]
+    record_review(engine, iid, "confirmed", "registrar", None, pd.Timestamp("2026-03-02 08:00", tz="UTC"))
+    rebuilt = build_items(findings(*FIRST), None, None, "run-x", NIGHT1)   # caller forgot `existing`
+    counts = upsert_items(engine, rebuilt)
+    assert read_items(engine).set_index("item_id").loc[iid, "status"] == STATUS_CLOSED
+    assert counts["reopened"] == 0
+
+
+def test_upsert_is_one_transaction(engine):
+    night(engine, FIRST)
+    before = table(engine)
+    bad = build_items(findings(finding("e7", "p7"), finding("e8", "p8")), None, None, "run-2", NIGHT2)
+    bad.loc[1, "tier"] = 9   # violates the tier check: the whole batch must roll back
+    with pytest.raises(Exception):
+        upsert_items(engine, bad)
+    pd.testing.assert_frame_equal(before, table(engine))
+
+
+@needs_pg
+def test_sqlite_and_postgresql_give_the_same_table(sqlite_engine, pg_engine):
+    for e in (sqlite_engine, pg_engine):
+        night(e, FIRST)
+        night(e, [finding("e4", "p1", "2026-03-02 20:00", tier=1, severity=0.9),
+                  finding("e9", "p9", "2026-03-02 21:00", severity=0.3)], now=NIGHT2, run_id="run-2")
+        record_review(e, read_items(e).iloc[0]["item_id"], "confirmed", "registrar", "ok",
+                      pd.Timestamp("2026-03-03 08:00", tz="UTC"))
+    pd.testing.assert_frame_equal(read_items(sqlite_engine), read_items(pg_engine))
+    pd.testing.assert_frame_equal(yield_table(sqlite_engine), yield_table(pg_engine))
+
+
+# --- reviews ----------------------------------------------------------------------------------
+def test_record_review_closes_the_item_and_it_drops_to_the_end(engine):
+    items, _ = night(engine, FIRST)
+    top = read_items(engine).iloc[0]["item_id"]
+    assert record_review(engine, top, "Confirmed", "cardiology registrar", "seen",
+                         pd.Timestamp("2026-03-02 09:00", tz="UTC"))
+    after = read_items(engine)
+    assert after.iloc[-1]["item_id"] == top and after.iloc[-1]["status"] == STATUS_CLOSED
+    assert after.iloc[-1]["status_reason"] == "reviewed: confirmed"
+    # the same review again is recognised, not stored twice
+    assert not record_review(engine, top, "confirmed", "cardiology registrar", None,
+                             pd.Timestamp("2026-03-02 09:00", tz="UTC"))
+
+
+@pytest.mark.parametrize("item,outcome,role,at,why", [
+    ("wl-0000000000000000", "confirmed", "registrar", "2026-03-02 09:00", "unknown_item"),
+    (None, "maybe", "registrar", "2026-03-02 09:00", "unknown_outcome"),
+    (None, "confirmed", "", "2026-03-02 09:00", "role"),
+    (None, "confirmed", "registrar", "2026-03-01 09:00", "reviewed_before_flagged"),
+])
+def test_record_review_refuses_bad_input(sqlite_engine, item, outcome, role, at, why):
+    items, _ = night(sqlite_engine, FIRST)
+    with pytest.raises(ValueError, match=why):
+        record_review(sqlite_engine, item or items.iloc[0]["item_id"], outcome, role, None, pd.Timestamp(at, tz="UTC"))
+
+
+def test_csv_import_takes_good_rows_and_rejects_bad_ones_with_reasons(engine, tmp_path):
+    items, _ = night(engine, FIRST)
+    a, b, c = items["item_id"]
+    csv = tmp_path / "reviews.csv"
+    csv.write_text(
+        "item_id,reviewed_at,reviewer_role,outcome,note\n"
+        f"{a},2026-03-02T09:00:00Z,registrar,Confirmed,\n"                  # line 2 ok
+        f"{b},2026-03-02T10:00:00+01:00,nurse,not confirmed,repeat sent\n"  # line 3 ok
+        f"{c},2026-03-02 09:00,registrar,confirmed,\n"                      # line 4 naive time
+        f"{c},yesterday,registrar,confirmed,\n"                             # line 5 unparseable
+        f"wl-ffffffffffffffff,2026-03-02T09:00:00Z,registrar,confirmed,\n"  # line 6 unknown item
+        f"{c},2026-03-02T09:00:00Z,registrar,probably,\n"                   # line 7 unknown outcome
+        f"{c},2026-03-02T09:00:00Z,,confirmed,\n")                          # line 8 no role
+    counts = import_reviews_csv(engine, csv)
+    assert (counts["read"], counts["imported"], counts["duplicate"], counts["rejected"]) == (7, 2, 0, 5)
+    assert [(r["line"], r["column"], r["reason"]) for r in counts["rejects"]] == [
+        (4, "reviewed_at", "naive_timestamp"), (5, "reviewed_at", "unparseable_timestamp"),
+        (6, "item_id", "unknown_item"), (7, "outcome", "unknown_outcome"), (8, "reviewer_role", "missing_value")]
+    status = read_items(engine).set_index("item_id")["status"]
+    assert status[a] == status[b] == STATUS_CLOSED and status[c] == STATUS_OPEN
+    again = import_reviews_csv(engine, csv)
+    assert (again["imported"], again["duplicate"], again["rejected"]) == (0, 2, 5)
+
+
+def test_csv_import_with_site_timezone_reads_local_times(sqlite_engine, tmp_path):
+    items, _ = night(sqlite_engine, FIRST)
+    csv = tmp_path / "reviews.csv"
+    # 2026-03-02 is winter time in Dublin (UTC+0); 2026-07-02 would be UTC+1.
+    csv.write_text(f"item_id,reviewed_at,reviewer_role,outcome\n{items['item_id'][0]},2026-03-02 09:00,registrar,confirmed\n")
+    counts = import_reviews_csv(sqlite_engine, csv, timezone="Europe/Dublin")
+    assert counts["imported"] == 1 and counts["rejected"] == 0
+
+
+def test_csv_without_a_required_column_is_a_whole_file_error(sqlite_engine, tmp_path):
+    csv = tmp_path / "reviews.csv"
+    csv.write_text("item_id,outcome\nx,confirmed\n")
+    with pytest.raises(ValueError, match="reviewed_at"):
+        import_reviews_csv(sqlite_engine, csv)
+
+
+# --- yield ------------------------------------------------------------------------------------
+@pytest.mark.parametrize("k,n,low,high", [
+    # Newcombe RG, Stat Med 1998;17:857, Table II, method 3 (Wilson score, no continuity
+    # correction), 95 %: from memory; the four pairs agree with our computation to 4 decimals.
+    (81, 263, 0.2553, 0.3662), (15, 148, 0.0624, 0.1605), (0, 20, 0.0, 0.1611), (1, 29, 0.0061, 0.1718),
+])
+def test_wilson_interval_matches_newcombe_worked_examples(k, n, low, high):
+    lo, hi = wilson_interval(k, n)
+    assert (round(float(lo), 4), round(float(hi), 4)) == (low, high)
+
+
+def test_wilson_interval_of_no_reviews_is_missing():
+    lo, hi = wilson_interval([0], [0])
+    assert pd.isna(lo[0]) and pd.isna(hi[0])
+
+
+def test_yield_against_a_hand_computed_example(engine):
+    # Five tier-2 hyperkalemia items and one tier-1 long_qt item, flagged at NIGHT1 (02:00).
+    rows = [finding(f"e{i}", f"p{i}", "2026-03-01 20:00", tier=2) for i in range(5)]
+    rows.append(finding("q1", "q1", "2026-03-01 20:00", screen="long_qt", tier=1))
+    items, _ = night(engine, rows)
+    ids = items.set_index("ecg_id")["item_id"]
+    at = lambda h: NIGHT1 + pd.Timedelta(hours=h)
+    record_review(engine, ids["e0"], "confirmed", "registrar", None, at(2))
+    record_review(engine, ids["e1"], "confirmed", "registrar", None, at(4))
+    record_review(engine, ids["e2"], "already_known", "registrar", None, at(10))
+    record_review(engine, ids["e3"], "not_confirmed", "registrar", None, at(30))
+    # e3 reviewed again later as data_problem: its latest outcome counts, its first review times it
+    record_review(engine, ids["e3"], "data_problem", "consultant", None, at(40))
+    y = yield_table(engine).set_index(["screen", "tier"])
+    hk = y.loc[("hyperkalemia", 2)]
+    # By hand: 5 items, 4 reviewed; true positives = confirmed 2 + already_known 1 = 3; PPV 3/4.
+    assert (hk["items"], hk["reviewed"], hk["confirmed"], hk["already_known"], hk["data_problem"]) == (5, 4, 2, 1, 1)
+    assert hk["ppv"] == pytest.approx(0.75)
+    # Wilson 3/4, z = 1.959964: centre (0.75 + z^2/8) / (1 + z^2/4) = 0.627527,
+    # half-width z/(1 + z^2/4) * sqrt(0.75*0.25/4 + z^2/64) = 0.326886 -> 0.30064 to 0.95441 (by hand).
+    assert hk["ppv_low"] == pytest.approx(0.30064, abs=1e-5) and hk["ppv_high"] == pytest.approx(0.95441, abs=1e-5)
+    assert hk["median_hours_to_review"] == pytest.approx(7.0)   # median of 2, 4, 10, 30 h
+    lq = y.loc[("long_qt", 1)]
+    assert lq["items"] == 1 and lq["reviewed"] == 0 and pd.isna(lq["ppv"])
+
+
+def test_yield_since_counts_only_items_flagged_from_that_date(engine):
+    night(engine, FIRST)
+    night(engine, [finding("e9", "p9", "2026-03-02 20:00")], now=NIGHT2, run_id="run-2")
+    assert yield_table(engine)["items"].sum() == 4
+    assert yield_table(engine, since="2026-03-03")["items"].sum() == 1
+
+
+# --- export -----------------------------------------------------------------------------------
+def test_export_csv_in_rank_order_with_formula_text_defused(engine):
+    night(engine, [finding("e1", "p1", tier=1), finding("e2", "p2", summary="=HYPERLINK(\"x\")")])
+    buf = io.StringIO()
+    assert export_items(engine, "csv", buf) == 2
+    back = pd.read_csv(io.StringIO(buf.getvalue()), dtype=str)
+    assert back["rank"].tolist() == ["1", "2"] and back["ecg_id"].tolist() == ["e1", "e2"]
+    assert back.loc[1, "summary"].startswith("'=")
+    assert "item_id" in back.columns and "first_flagged_at" in back.columns
+
+
+def test_export_refuses_unknown_format(sqlite_engine):
+    with pytest.raises(ValueError, match="format"):
+        export_items(sqlite_engine, "xlsx", io.StringIO())
