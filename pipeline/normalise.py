@@ -77,7 +77,7 @@ def normalise_table(raw: pd.DataFrame, table: c.Table, settings: Settings, scope
         out[col.name] = _parse(df[col.name], col, settings, problems)
     frame = pd.DataFrame(out)
     if FILE_COLUMN in df.columns:
-        frame[FILE_COLUMN] = df[FILE_COLUMN].astype("str")
+        frame[FILE_COLUMN] = df[FILE_COLUMN].astype("category")   # a few files for many rows
     else:
         frame[FILE_COLUMN] = source
 
@@ -124,10 +124,12 @@ def _in_scope(frame, table, window, keep, partition_dates) -> np.ndarray:
         t = frame[table.time_column]
         outside = t.notna() & ((t < window[0]) | (t >= window[1]))
         inside &= ~outside.to_numpy()
-        if partition_dates is not None:
-            day = frame[FILE_COLUMN].str.extract(r"date=(\d{4}-\d{2}-\d{2})", expand=False)
-            other_night = t.isna() & day.notna() & ((day < partition_dates[0]) | (day > partition_dates[1]))
-            inside &= ~other_night.to_numpy()
+        unreadable = t.isna().to_numpy()
+        if partition_dates is not None and unreadable.any():
+            files = frame.loc[unreadable, FILE_COLUMN]
+            day = files.str.extract(r"date=(\d{4}-\d{2}-\d{2})", expand=False)
+            other_night = day.notna() & ((day < partition_dates[0]) | (day > partition_dates[1]))
+            inside[np.flatnonzero(unreadable)[other_night.to_numpy()]] = False
     for name, values in (keep or {}).items():
         v = frame[name]
         inside &= ~(v.notna() & ~v.isin(values)).to_numpy()

@@ -252,8 +252,9 @@ def stage_screen(out, start, end, config=None, settings: Settings | None = None)
     lo, hi = interval(start, end)
     d = stage_dir(out, lo, hi)
     rules = load_rules(settings.rules or None, source_name=settings.source)
-    leads = [read_stage(d, "ecg_lead"), read_stage(d, "prior_lead")]
-    leads = pd.concat([x for x in leads if x is not None], ignore_index=True)
+    from pipeline.normalise import empty_table
+    leads = [x for x in (read_stage(d, "ecg_lead"), read_stage(d, "prior_lead")) if x is not None]
+    leads = pd.concat(leads, ignore_index=True) if leads else empty_table(c.ECG_LEAD)
     findings = run_screens(pd.read_parquet(d / "aligned.parquet"), leads, rules)
     write_parquet(findings, d / "findings.parquet")
     by = findings.groupby(["screen", "tier"]).size()
