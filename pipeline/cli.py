@@ -10,8 +10,7 @@ from __future__ import annotations
 import argparse
 import sys
 
-CAUTION = ("cardiosieve is a screening aid for human review, not a diagnosis: every item must be "
-           "reviewed by a qualified clinician under local protocols.")
+from pipeline import CAUTION
 
 EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT = 0, 1, 2
 
@@ -106,9 +105,12 @@ def format_summary(s: dict) -> str:
     lines = [f"cardiosieve run [{s['interval'][0]}, {s['interval'][1]})",
              f"  ECGs in interval: {e['rows_in']}  screened: {screened}  rejected: {e['rows_in'] - screened} "
              f"(contract {e['rejected']}, quality {e['accepted'] - screened})"]
-    ctx = ", ".join(f"{name} {t[name]['accepted']}+{t[name]['rejected']} rejected"
-                    for name in ("ecg_lead", "lab", "patient", "ecg_history", "medication"))
-    lines.append(f"  context rows read (accepted+rejected): {ctx}")
+    lines.append("  rows read per table (in = accepted + rejected by the contract):")
+    labels = {"ecg": "ecg (interval)", "ecg_lead": "ecg_lead (interval)", "ecg_history": "ecg (prior, window)",
+              "lab": "lab (window)", "patient": "patient", "medication": "medication (window)"}
+    for name, label in labels.items():
+        if name in t:
+            lines.append(f"    {label:<22} {t[name]['rows_in']:>8} = {t[name]['accepted']:>8} + {t[name]['rejected']}")
     if s.get("rejects_by_reason"):
         lines.append("  rejected rows by reason:")
         lines += [f"    {k:<38} {v}" for k, v in sorted(s["rejects_by_reason"].items())]
@@ -128,6 +130,8 @@ def format_summary(s: dict) -> str:
         lines.append("  worklist items by screen: " +
                      ", ".join(f"{k} {v}" for k, v in sorted(w.get("by_screen", {}).items())))
         lines.append(f"  database: {w.get('db_counts', {})}")
+    if s.get("seconds"):
+        lines.append("  seconds: " + ", ".join(f"{k} {v:.2f}" for k, v in s["seconds"].items()))
     for name, path in s.get("outputs", {}).items():
         lines.append(f"  wrote {name}: {path}")
     lines.append("  " + CAUTION)

@@ -14,8 +14,7 @@ import argparse
 import sys
 from pathlib import Path
 
-CAUTION = ("Screening aid for human review, not a diagnosis: check each item against the full ECG "
-           "and the patient's record.")
+from pipeline import CAUTION
 # Kept in step with pipeline.store.OUTCOMES (tests/test_commands.py checks it); repeated here
 # because this module may not import the store at start-up.
 OUTCOME_HELP = "confirmed, not_confirmed, already_known, data_problem"

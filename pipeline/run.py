@@ -9,11 +9,13 @@ from __future__ import annotations
 
 import json
 import os
+import time
 from datetime import datetime
 from pathlib import Path
 
 import pandas as pd
 
+from pipeline import CAUTION
 from pipeline import contract as c
 from pipeline.config import Settings, load_settings
 
@@ -286,33 +288,82 @@ def stage_worklist(out, start, end, config=None, db=None, settings: Settings | N
     finally:
         engine.dispose()
     ranked = ranked.sort_values("rank", kind="stable") if "rank" in ranked.columns else ranked
+    ranked.attrs["caution"] = CAUTION                      # travels in the Parquet file's metadata
     path = worklist.write_parquet_atomic(ranked, Path(out) / "worklist.parquet")
     active = ranked[ranked["status"].isin(worklist.ACTIVE_STATUSES)] if len(ranked) else ranked
     return {"items_tonight": int(len(items)), "db_counts": db_counts, "path": str(path),
             "by_screen": {k: int(v) for k, v in active.groupby("screen").size().items()} if len(active) else {}}
 
 
-def run_interval(lake, out, start, end, config=None, db=None, quality: bool = True) -> dict:
-    """The whole nightly job for ECGs acquired in [start, end); returns the run summary (counts
-    only) and writes it to OUT/run_summary.json beside the worklist and the rejects."""
+CHUNK_DAYS = 31   # a long backfill runs in chunks of at most this many days: memory stays bounded
+
+
+def run_interval(lake, out, start, end, config=None, db=None, quality: bool = True,
+                 chunk_days: float = CHUNK_DAYS) -> dict:
+    """The whole job for ECGs acquired in [start, end); returns the run summary (counts and
+    seconds per stage only) and writes it to OUT/run_summary.json beside the worklist, the
+    aligned table and the rejects. An interval longer than `chunk_days` runs chunk by chunk,
+    in time order, so that the worklist folds episodes exactly as nightly runs would."""
     settings = load_settings(config)
+    lo, hi = interval(start, end)
     Path(out).mkdir(parents=True, exist_ok=True)
-    loaded = stage_load(lake, out, start, end, settings=settings)
-    summary = {"interval": loaded["interval"], "config": settings.source, "tables": loaded["tables"],
-               "rejects_by_reason": loaded["rejects_by_reason"]}
-    d = Path(loaded["stage_dir"])
-    if quality:
-        summary["quality"] = stage_quality(lake, out, start, end, settings=settings)
-    summary["aligned"] = stage_align(out, start, end, settings=settings, lake=lake)
-    summary["tables"]["ecg"]["screened"] = summary["aligned"]["aligned"]
-    screened = stage_screen(out, start, end, settings=settings)
-    summary["findings"] = screened["by_screen_tier"]
-    summary["worklist"] = stage_worklist(out, start, end, db=db, settings=settings)
-    rejects = all_rejects(d)
+    step = pd.Timedelta(days=chunk_days)
+    bounds = [lo]
+    while bounds[-1] + step < hi:
+        bounds.append(bounds[-1] + step)
+    bounds.append(hi)
+    parts, aligned, rejects = [], [], []
+    for a, b in zip(bounds[:-1], bounds[1:]):
+        parts.append(_run_chunk(lake, out, a, b, settings, db, quality))
+        d = stage_dir(out, a, b)
+        aligned.append(pd.read_parquet(d / "aligned.parquet"))
+        rejects.append(all_rejects(d))
+    summary = _add_up(parts)
+    summary["interval"] = [lo.isoformat(), hi.isoformat()]
+    summary["config"] = settings.source
+    summary["chunks"] = len(parts)
+    rejects = pd.concat(rejects, ignore_index=True)
     summary["rejects_by_reason"] = _reasons(rejects)
     write_parquet(rejects, Path(out) / "rejects.parquet")
-    summary["outputs"] = {"worklist": summary["worklist"]["path"],
+    write_parquet(pd.concat(aligned, ignore_index=True) if len(aligned) > 1 else aligned[0],
+                  Path(out) / "aligned.parquet")
+    summary["outputs"] = {"worklist": parts[-1]["worklist"]["path"],
                           "aligned": str(Path(out) / "aligned.parquet"),
                           "rejects": str(Path(out) / "rejects.parquet")}
     write_json(summary, Path(out) / "run_summary.json")
     return summary
+
+
+def _run_chunk(lake, out, lo, hi, settings: Settings, db, quality: bool) -> dict:
+    seconds = {}
+
+    def timed(name, fn, *args, **kw):
+        t = time.perf_counter()
+        result = fn(*args, **kw)
+        seconds[name] = round(time.perf_counter() - t, 3)
+        return result
+
+    loaded = timed("load", stage_load, lake, out, lo, hi, settings=settings)
+    summary = {"tables": loaded["tables"]}
+    if quality:
+        summary["quality"] = timed("quality", stage_quality, lake, out, lo, hi, settings=settings)
+    summary["aligned"] = timed("align", stage_align, out, lo, hi, settings=settings, lake=lake)
+    summary["tables"]["ecg"]["screened"] = summary["aligned"]["aligned"]
+    summary["findings"] = timed("screen", stage_screen, out, lo, hi, settings=settings)["by_screen_tier"]
+    summary["worklist"] = timed("worklist", stage_worklist, out, lo, hi, db=db, settings=settings)
+    summary["seconds"] = seconds
+    return summary
+
+
+def _add_up(parts: list[dict]) -> dict:
+    """Sum the numbers of chunk summaries key by key; other values come from the last chunk."""
+    def add(x, y):
+        if isinstance(x, dict) and isinstance(y, dict):
+            return {k: add(x[k], y[k]) if k in x and k in y else y.get(k, x.get(k)) for k in {**x, **y}}
+        if isinstance(x, (int, float)) and isinstance(y, (int, float)) and not isinstance(x, bool):
+            return x + y
+        return y
+    total = parts[0]
+    for p in parts[1:]:
+        total = add(total, p)
+    return total
