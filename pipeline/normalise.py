@@ -15,6 +15,7 @@ import pandas as pd
 
 from pipeline import contract as c
 from pipeline.config import Settings
+from pipeline.frames import isin
 
 
 class ContractError(ValueError):
@@ -132,7 +133,7 @@ def _in_scope(frame, table, window, keep, partition_dates) -> np.ndarray:
             inside[np.flatnonzero(unreadable)[other_night.to_numpy()]] = False
     for name, values in (keep or {}).items():
         v = frame[name]
-        inside &= ~(v.notna() & ~v.isin(values)).to_numpy()
+        inside &= ~(v.notna().to_numpy() & ~isin(v, values))
     return inside
 
 

@@ -18,6 +18,7 @@ import pandas as pd
 from pipeline import CAUTION
 from pipeline import contract as c
 from pipeline.config import Settings, load_settings
+from pipeline.frames import isin
 
 STAGE_DIR = "_stage"
 # What the prior-ECG lookup needs of the patients' earlier ECGs (pipeline/align.py PRIOR_COLUMNS).
@@ -127,7 +128,7 @@ def _load_prior_leads(lake, d: Path, aligned: pd.DataFrame, settings: Settings) 
     from pipeline.load import read_table
 
     priors = aligned.dropna(subset=["prior_ecg_id"])
-    priors = priors[~priors["prior_ecg_id"].isin(aligned["ecg_id"])].drop_duplicates("prior_ecg_id")
+    priors = priors[~isin(priors["prior_ecg_id"], aligned["ecg_id"])].drop_duplicates("prior_ecg_id")
     if priors.empty:
         return 0
     days = _with_slack(set(priors["prior_acquired_at"].dt.strftime("%Y-%m-%d").unique()))

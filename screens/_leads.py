@@ -13,6 +13,8 @@ from typing import Sequence
 import numpy as np
 import pandas as pd
 
+from pipeline.frames import isin
+
 LIMB = ["I", "II", "III", "aVR", "aVL", "aVF"]
 PRECORDIAL = ["V1", "V2", "V3", "V4", "V5", "V6"]
 RIGHT = ["V3R", "V4R"]
@@ -43,7 +45,7 @@ def wide(leads: pd.DataFrame, ecg_ids: pd.Series | np.ndarray, columns: Sequence
     if leads is None or len(leads) == 0 or n == 0:
         return empty
     wanted = set(ids.dropna())
-    sub = leads.loc[leads["ecg_id"].astype("str").isin(wanted), ["ecg_id", "lead", *columns]]
+    sub = leads.loc[isin(leads["ecg_id"], wanted), ["ecg_id", "lead", *columns]]
     if len(sub) == 0:
         return empty
     sub = sub.assign(ecg_id=sub["ecg_id"].astype("str"), lead=sub["lead"].astype("str"))
