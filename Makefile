@@ -29,6 +29,7 @@ test: install
 
 bench: install
 	$(BIN)/python bench/align.py
+	$(BIN)/python bench/nightly.py
 
 sample-lake: install
 	$(BIN)/python -m pipeline.samplegen --out sample_lake

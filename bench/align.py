@@ -12,15 +12,10 @@ A benchmark, not a test: figures go to docs/performance.md by hand.
 from __future__ import annotations
 
 import argparse
-import json
 import statistics
-import subprocess
-import sys
-import time
 from pathlib import Path
 
-ROOT = Path(__file__).resolve().parents[1]
-PY = sys.executable
+from _common import ensure_lake, run_json
 
 NIGHT_CODE = """
 import json, resource, sys, time
@@ -30,7 +25,7 @@ lake, out, start, end, config = sys.argv[1:6]
 t1 = time.perf_counter()
 loaded = stage_load(lake, out, start, end, config=config or None)
 t2 = time.perf_counter()
-aligned = stage_align(out, start, end, config=config or None)
+aligned = stage_align(out, start, end, config=config or None, lake=lake)
 t3 = time.perf_counter()
 print(json.dumps({"import_s": t1 - t0, "load_s": t2 - t1, "align_s": t3 - t2, "ecgs": aligned["aligned"],
                   "lab_rows": loaded["tables"]["lab"]["rows_in"], "history_rows": loaded["tables"]["ecg_history"]["rows_in"],
@@ -73,23 +68,6 @@ print(json.dumps({"total_s": t1 - t0, "ecgs": len(df), "with_k": int(df["k_mmol_
 """
 
 
-def ensure_lake(path: Path, patients: int, days: int, end: str) -> float:
-    if (path / "ecg").is_dir():
-        return 0.0
-    t = time.perf_counter()
-    subprocess.run([PY, "-m", "pipeline.samplegen", "--out", str(path), "--patients", str(patients),
-                    "--days", str(days), "--end", end], check=True, cwd=ROOT)
-    return time.perf_counter() - t
-
-
-def run_json(code: str, *args) -> dict:
-    t = time.perf_counter()
-    out = subprocess.run([PY, "-c", code, *map(str, args)], check=True, capture_output=True, text=True, cwd=ROOT)
-    result = json.loads(out.stdout.strip().splitlines()[-1])
-    result["wall_s"] = time.perf_counter() - t
-    return result
-
-
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--patients", type=int, default=60000)
@@ -100,12 +78,9 @@ def main() -> None:
     ap.add_argument("--skip-long", action="store_true")
     args = ap.parse_args()
     lake = Path(args.lake)
-    gen = ensure_lake(lake, args.patients, args.days, args.end)
-    config = lake / "site.toml"
-    config = str(config) if config.exists() else ""
+    config = ensure_lake(lake, args.patients, args.days, args.end)
     night = ("2026-11-29T00:00:00Z", "2026-11-30T00:00:00Z")
-    print(f"lake {lake} ({args.patients} patients, {args.days} days; generated in {gen:.1f} s)" if gen
-          else f"lake {lake} (cached)")
+    print(f"lake {lake} ({args.patients} patients, {args.days} days)")
 
     nights = [run_json(NIGHT_CODE, lake, "/tmp/cs-bench-out", *night, config) for _ in range(3)]
     med = statistics.median(n["wall_s"] for n in nights)
@@ -116,7 +91,7 @@ def main() -> None:
 
     if not args.skip_long:
         long_lake = Path(args.long_lake)
-        gen = ensure_lake(long_lake, args.patients * 3, args.days * 3, args.end)
+        ensure_lake(long_lake, args.patients * 3, args.days * 3, args.end)
         longs = [run_json(NIGHT_CODE, long_lake, "/tmp/cs-bench-out-long", *night, config) for _ in range(3)]
         print(f"same night on a lake with {args.days * 3} days of history: median wall "
               f"{statistics.median(n['wall_s'] for n in longs):.2f} s (load {longs[-1]['load_s']:.2f}, "

@@ -15,16 +15,11 @@ A benchmark, not a test: its figures go to docs/performance.md by hand.
 from __future__ import annotations
 
 import argparse
-import json
 import shutil
 import statistics
-import subprocess
-import sys
-import time
 from pathlib import Path
 
-ROOT = Path(__file__).resolve().parents[1]
-PY = sys.executable
+from _common import ensure_lake, run_json
 
 RUN_CODE = """
 import json, resource, sys, time
@@ -81,23 +76,6 @@ df = con.execute(sql).df()
 print(json.dumps({"total_s": time.perf_counter() - t0, "findings": len(df),
                   "peak_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}))
 """
-
-
-def ensure_lake(path: Path, patients: int, days: int, end: str) -> str:
-    if not (path / "ecg").is_dir():
-        t = time.perf_counter()
-        subprocess.run([PY, "-m", "pipeline.samplegen", "--out", str(path), "--patients", str(patients),
-                        "--days", str(days), "--end", end], check=True, cwd=ROOT, stdout=subprocess.DEVNULL)
-        print(f"  generated {path} ({patients} patients, {days} days) in {time.perf_counter() - t:.0f} s")
-    return str(path / "site.toml")
-
-
-def run_json(code: str, *args) -> dict:
-    t = time.perf_counter()
-    done = subprocess.run([PY, "-c", code, *map(str, args)], check=True, capture_output=True, text=True, cwd=ROOT)
-    result = json.loads(done.stdout.strip().splitlines()[-1])
-    result["wall_s"] = time.perf_counter() - t
-    return result
 
 
 def ours(lake, config, start, end, quality=True, fresh=True) -> dict:

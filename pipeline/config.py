@@ -18,9 +18,10 @@ class ConfigError(ValueError):
     """The site configuration is unusable; the message says which setting and why."""
 
 
-# LOINC codes (loinc.org; from memory, each to be confirmed against the site's own catalogue):
-# 2823-3 potassium [moles/volume] in serum or plasma; 6298-4 potassium in blood;
-# 19123-9 magnesium [mass/volume] in serum or plasma; 2601-3 magnesium [moles/volume];
+# LOINC codes (each to be confirmed against the site's own catalogue). 19123-9 magnesium
+# [mass/volume] in serum or plasma: as listed in hospital laboratory test catalogues (checked).
+# From memory: 2823-3 potassium [moles/volume] in serum or plasma; 6298-4 potassium in blood;
+# 2601-3 magnesium [moles/volume];
 # 17861-6 calcium [mass/volume] in serum or plasma; 2000-8 calcium [moles/volume].
 DEFAULT_ANALYTES = {
     "potassium": ("2823-3", "6298-4"),

@@ -1,0 +1,31 @@
+"""Shared by the benchmarks: cached generated lakes and timed fresh-process runs."""
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+PY = sys.executable
+
+
+def ensure_lake(path: Path, patients: int, days: int, end: str = "2026-11-30") -> str:
+    """Generate an invented lake once (kept under /tmp between runs); returns its site config."""
+    path = Path(path)
+    if not (path / "ecg").is_dir():
+        t = time.perf_counter()
+        subprocess.run([PY, "-m", "pipeline.samplegen", "--out", str(path), "--patients", str(patients),
+                        "--days", str(days), "--end", end], check=True, cwd=ROOT, stdout=subprocess.DEVNULL)
+        print(f"  generated {path} ({patients} patients, {days} days) in {time.perf_counter() - t:.0f} s")
+    return str(path / "site.toml")
+
+
+def run_json(code: str, *args) -> dict:
+    """Run `code` in a fresh interpreter (start-up counts); its last stdout line is JSON."""
+    t = time.perf_counter()
+    done = subprocess.run([PY, "-c", code, *map(str, args)], check=True, capture_output=True, text=True, cwd=ROOT)
+    result = json.loads(done.stdout.strip().splitlines()[-1])
+    result["wall_s"] = time.perf_counter() - t
+    return result
