@@ -66,6 +66,10 @@ def main(argv: list[str] | None = None) -> int:
         return EXIT_BAD_INPUT
     try:
         return args.handler(args) or EXIT_OK
+    except BrokenPipeError:           # the reader (e.g. `| head`) closed the pipe: not an error
+        import os
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return EXIT_OK
     except Exception as exc:          # classify; never print row values
         if _is_bad_input(exc):
             print(f"cardiosieve: error: {exc}", file=sys.stderr)

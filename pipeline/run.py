@@ -323,6 +323,7 @@ def run_interval(lake, out, start, end, config=None, db=None, quality: bool = Tr
     summary["interval"] = [lo.isoformat(), hi.isoformat()]
     summary["config"] = settings.source
     summary["chunks"] = len(parts)
+    summary["caution"] = CAUTION
     rejects = pd.concat(rejects, ignore_index=True)
     summary["rejects_by_reason"] = _reasons(rejects)
     write_parquet(rejects, Path(out) / "rejects.parquet")

@@ -199,8 +199,12 @@ class Variant:
 class _Builder:
     """Column arrays of one invented lake while it is being built (rows addressed by position)."""
 
-    def __init__(self, rng: np.random.Generator, patients: int, days: int, end_us: int):
+    def __init__(self, rng: np.random.Generator, patients: int, days: int, end_us: int,
+                 vary_rng: np.random.Generator | None = None):
         self.rng = rng
+        # A generator of its own for the ECG-to-ECG variation of one patient (make_measurements):
+        # drawing it from `rng` would shift every later draw, hence every id, time and plant.
+        self.vary_rng = vary_rng if vary_rng is not None else np.random.default_rng(0)
         self.n_patients = patients
         self.days = days
         self.end_us = end_us
@@ -292,7 +296,8 @@ class _Builder:
         rng, n = self.rng, self.e_pidx.size
         self.af = (rng.random(n) < 0.03) & (self.e_role == 0)   # rate-controlled AF-like: no P, PR null
         self.hr = np.where(self.af, self.ri(62, 98, n), self.ri(56, 98, n))
-        self.pr = np.where(self.af, np.nan, self.ri(125, 195, n))
+        pr_draw = self.ri(125, 195, n)
+        self.pr = np.where(self.af, np.nan, pr_draw)
         self.qrs = self.ri(82, 108, n)
         self.qtc = self.u(395, 438, n)            # Fridericia; qt_ms is derived from it at the end
         self.p_axis = np.where(self.af, np.nan, self.ri(10, 70, n))
@@ -315,6 +320,22 @@ class _Builder:
         male = self.sex[self.e_pidx] == 1
         er = np.flatnonzero(male & (rng.random(n) < 0.3))
         self.L["st"][er[:, None], [V2, V3]] = rng.uniform(20, MEN_V2V3_ST_HI, (er.size, 2))
+
+        # One patient's ECGs are one heart recorded on different days: T, PR and QRS vary modestly
+        # around the patient's first ECG (T x 0.9-1.1 per lead, PR +-10 ms, QRS +-5 ms; a local
+        # choice, from memory of day-to-day variation), so two ECGs of a normal patient differ by at most ~22 % in T, 20 ms in PR and
+        # 10 ms in QRS: below the hyperkalemia screen's changes against the prior ECG (T +50 %,
+        # PR +40 ms, QRS +20 ms, screens/rules.toml), which independent draws over the whole
+        # normal range crossed (T 100 -> 450 uV is +350 %). Planted variants set their own values
+        # afterwards; every value stays inside its normal range.
+        vr = self.vary_rng
+        _, first, which = np.unique(self.e_pidx, return_index=True, return_inverse=True)
+        base = first[which]                                  # each row's patient's first row
+        t_lo, t_hi = np.minimum(_T_LO, _T_HI), np.maximum(_T_LO, _T_HI)
+        self.L["t"] = np.clip(self.L["t"][base] * vr.uniform(0.9, 1.1, (n, 12)), t_lo, t_hi)
+        pr_draw = np.clip(pr_draw[base] + vr.integers(-10, 11, n), 125, 195)
+        self.pr = np.where(self.af, np.nan, pr_draw)
+        self.qrs = np.clip(self.qrs[base] + vr.integers(-5, 6, n), 82, 108).astype(np.float64)
 
         # A few normal ECGs also record right-sided or posterior leads, all near the baseline.
         extra = np.flatnonzero((self.e_role == 0) & (rng.random(n) < 0.008))
@@ -969,7 +990,7 @@ def generate(out_dir, patients: int = 2000, days: int = 30, end: str = "2026-11-
     out = Path(out_dir)
     rng = np.random.default_rng(seed)
     end_us = int(np.datetime64(str(end)[:10], "D").astype("datetime64[us]").astype(np.int64))
-    b = _Builder(rng, patients, days, end_us)
+    b = _Builder(rng, patients, days, end_us, vary_rng=np.random.default_rng([seed, 1]))
     b.make_patients()
 
     # ------------------------------------------------------------ who is planted with what

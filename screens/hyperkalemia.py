@@ -162,6 +162,11 @@ def screen_hyperkalemia(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules
     evaluable = np.column_stack([eval_peaked, eval_qrs, eval_pr, eval_pflat, eval_brady])
     n_signs = signs.sum(axis=1)
     any_sign = n_signs > 0
+    # No P wave and no PR interval is how the cart reports atrial fibrillation or flutter, far
+    # more often than a potassium-flattened P. With a potassium in the window it still counts (a
+    # high K explains it); without one it alone does not raise a finding (local choice).
+    p_absent_no_pr = sign_pflat & np.isnan(pr)
+    any_sign_without_k = (n_signs - p_absent_no_pr) > 0
 
     # ---- tiers
     tier = np.select(
@@ -170,8 +175,8 @@ def screen_hyperkalemia(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules
             severe | (moderate & any_sign),
             moderate | (mild & any_sign),
             mild,
-            ~k_known & (n_signs >= int(r.setting("no_k_signs_for_tier3"))),
-            ~k_known & any_sign,
+            ~k_known & any_sign_without_k & (n_signs >= int(r.setting("no_k_signs_for_tier3"))),
+            ~k_known & any_sign_without_k,
         ],
         [1, 2, 3, 4, 3, 4],
         NO_FINDING,

@@ -12,7 +12,8 @@ What it flags (one finding per ECG; its `evidence.values.pattern` says which)
                       elevation elsewhere it adds "posterior" to that finding's territories.
     avr_widespread_depression
                       ST elevation >= 100 uV in aVR with ST depression >= 50 uV in >= 6 other
-                      leads, reported as its own pattern (no territory) [PRACTICE].
+                      leads, reported as its own pattern (no territory) [PRACTICE]; it takes
+                      precedence over posterior_depression (see the pattern choice below).
     diffuse_elevation elevation over >= 3 walls (inferior, lateral, anterior/septal) without
                       reciprocal depression: pericarditis-like, reported as such and NOT as a
                       territory [PRACTICE; wall count LOCAL].
@@ -357,6 +358,12 @@ def screen_st_deviation(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules
     )
 
     # ---- one pattern per ECG, the most specific first
+    # aVR elevation with widespread depression comes before posterior depression: when >= 6
+    # other leads are depressed, depression in V1-V3 is part of that diffuse pattern and not
+    # the isolated V1-V3 depression that points to the posterior wall (UDMI-2018 reads
+    # depression in >= 8 leads with aVR elevation as left main or three-vessel ischaemia; from
+    # memory, not in REFERENCES.md). A normal V3 often has a dominant R, so the posterior
+    # reading used to win: 4 of the 7 planted aVR cases of sample_lake were called posterior.
     plain = ~ev["confounded"]
     missing_std = now["st_j_uv"][STANDARD].isna()
     any_missing = missing_std.any(axis=1).to_numpy()
@@ -366,11 +373,11 @@ def screen_st_deviation(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules
             lb,
             plain & ev["diffuse"],
             plain & ev["elevated"],
-            plain & ev["post_dep"],
             plain & ev["avr"],
+            plain & ev["post_dep"],
             any_missing & bool(r.setting("report_not_evaluable")),
         ],
-        [P_LBBB, P_DIFFUSE, P_ELEVATION, P_POSTERIOR, P_AVR, P_NOT_EVALUABLE],
+        [P_LBBB, P_DIFFUSE, P_ELEVATION, P_AVR, P_POSTERIOR, P_NOT_EVALUABLE],
         "",
     )
     base = np.select(

@@ -158,6 +158,17 @@ def test_signs_without_potassium_say_none_was_measured_and_suggest_one():
     assert int(two["tier"].iloc[0]) == 3
 
 
+def test_absent_p_without_a_pr_interval_alone_needs_a_potassium_to_count():
+    # No P and no PR is how carts report atrial fibrillation (common practice); without a
+    # potassium in the window it alone raises nothing (local choice in screens/hyperkalemia.py) ...
+    flat_p = lead_rows(p_amp_uv={"II": 0.0})
+    assert run(flat_p, k_mmol_l=np.nan, k_offset_min=np.nan, k_result_id=None, pr_ms=np.nan).empty
+    # ... with a PR interval it is a flattened P, a sign (tier 4 with no potassium, as above) ...
+    assert int(run(flat_p, k_mmol_l=np.nan, k_offset_min=np.nan, k_result_id=None)["tier"].iloc[0]) == 4
+    # ... and with a severe potassium (UKKA-2020: >= 6.5) it counts as a sign: tier 1.
+    assert int(run(flat_p, k_mmol_l=6.8, pr_ms=np.nan)["tier"].iloc[0]) == 1
+
+
 def test_no_potassium_and_no_signs_is_no_finding():
     assert run(k_mmol_l=np.nan).empty
 
@@ -174,7 +185,7 @@ def test_site_override_of_a_band_moves_the_tier():
     out = screen_hyperkalemia(ecg_rows(k_mmol_l=6.3), lead_rows(), rules)
     assert int(out["tier"].iloc[0]) == 2
     ev = json.loads(out["evidence"].iloc[0])
-    assert ev["rules"][0]["source"] == "site: site" and ev["rule_version"].startswith("hyperkalemia/1.0.0+site.")
+    assert ev["rules"][0]["source"] == "site: site" and ev["rule_version"].startswith("hyperkalemia/1.0.1+site.")
 
 
 @settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.too_slow])
