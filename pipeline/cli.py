@@ -74,6 +74,11 @@ def main(argv: list[str] | None = None) -> int:
         if _is_bad_input(exc):
             print(f"cardiosieve: error: {exc}", file=sys.stderr)
             return EXIT_BAD_INPUT
+        if isinstance(exc, OSError) and exc.errno is not None:   # the system, not the data: retry
+            where = f" ({exc.filename})" if exc.filename else ""
+            print(f"cardiosieve: I/O error: {exc.strerror}{where}; rerun the same interval "
+                  f"when the storage is back (a rerun reproduces the same outputs)", file=sys.stderr)
+            return EXIT_INTERNAL
         print(f"cardiosieve: internal error ({type(exc).__name__}); rerun with "
               f"CARDIOSIEVE_DEBUG=1 for the traceback", file=sys.stderr)
         import os

@@ -9,7 +9,8 @@ shared schema would silently cast a file of naive timestamps to UTC. Filters on 
 ECG and analyte are pushed down where the file's column type allows it; the rest is filtered
 after parsing (see pipeline/normalise.py).
 
-A file that cannot be read is a LakeError naming the file; nothing is skipped silently.
+A damaged file is a LakeError naming the file; nothing is skipped silently. An I/O error of the
+system (errno set: a mount away, EIO) propagates as OSError, for the scheduler to retry.
 """
 from __future__ import annotations
 
@@ -27,6 +28,13 @@ from pipeline import contract as c
 from pipeline.config import Settings
 from pipeline.normalise import (FILE_COLUMN, ContractError, Normalised, empty_rejects, empty_table,
                                 normalise_table, reject_duplicates)
+
+
+def _corrupt(exc: BaseException) -> bool:
+    """True when a read failed on the file's content (a retry cannot help): pyarrow's own errors,
+    and the OSError without errno that it raises for a damaged footer or metadata. An OSError
+    with errno (a mount away, EIO, a vanished file) is left to propagate: the scheduler retries."""
+    return isinstance(exc, pa.ArrowException) or (isinstance(exc, OSError) and exc.errno is None)
 
 
 class LakeError(ValueError):
@@ -129,6 +137,8 @@ def _schema_groups(files: list[Path]) -> list[tuple[pa.Schema, list[Path]]]:
         try:
             schema = pq.read_schema(f)
         except (pa.ArrowException, OSError) as exc:
+            if not _corrupt(exc):
+                raise
             raise LakeError(f"cannot read {f}: not a readable Parquet file ({type(exc).__name__})") from None
         schema = schema.remove_metadata()
         key = schema.to_string()
@@ -168,11 +178,15 @@ def _scan(files: list[Path], schema: pa.Schema, columns: list[str], expr) -> pd.
         dataset = ds.dataset([str(f) for f in files], schema=schema, format="parquet")
         scanner = ds.Scanner.from_dataset(dataset, columns=columns + ["__filename"], filter=expr)
         tbl = scanner.to_table()
-    except (pa.ArrowException, OSError):
+    except (pa.ArrowException, OSError) as scan_exc:
+        if not _corrupt(scan_exc):
+            raise
         for f in files:                      # find the file to name
             try:
                 pq.read_table(f, columns=columns)
             except (pa.ArrowException, OSError) as exc:
+                if not _corrupt(exc):
+                    raise
                 raise LakeError(f"cannot read {f}: {type(exc).__name__}") from None
         raise
     df = tbl.to_pandas(types_mapper={pa.string(): pd.StringDtype("pyarrow", na_value=np.nan),

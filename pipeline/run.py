@@ -313,26 +313,31 @@ def run_interval(lake, out, start, end, config=None, db=None, quality: bool = Tr
     while bounds[-1] + step < hi:
         bounds.append(bounds[-1] + step)
     bounds.append(hi)
-    parts, aligned, rejects = [], [], []
-    for a, b in zip(bounds[:-1], bounds[1:]):
-        parts.append(_run_chunk(lake, out, a, b, settings, db, quality))
-        d = stage_dir(out, a, b)
-        aligned.append(pd.read_parquet(d / "aligned.parquet"))
-        rejects.append(all_rejects(d))
-    summary = _add_up(parts)
-    summary["interval"] = [lo.isoformat(), hi.isoformat()]
-    summary["config"] = settings.source
-    summary["chunks"] = len(parts)
-    summary["caution"] = CAUTION
-    rejects = pd.concat(rejects, ignore_index=True)
-    summary["rejects_by_reason"] = _reasons(rejects)
-    write_parquet(rejects, Path(out) / "rejects.parquet")
+    parts = [_run_chunk(lake, out, a, b, settings, db, quality) for a, b in zip(bounds[:-1], bounds[1:])]
+    return stage_finish(out, lo, hi, _add_up(parts) | {"chunks": len(parts)}, settings, bounds)
+
+
+def stage_finish(out, start, end, summary: dict, settings: Settings | None = None,
+                 chunk_bounds: list[pd.Timestamp] | None = None, config=None) -> dict:
+    """The last stage: OUT/rejects.parquet (every reject of the interval), OUT/aligned.parquet
+    (every aligned ECG) and OUT/run_summary.json, the stage summaries put together with the
+    reject counts by reason, the caution and the output paths. `chunk_bounds` lists the
+    boundaries of the chunks a backfill ran in; a single-chunk run passes none."""
+    settings = settings or load_settings(config)
+    lo, hi = interval(start, end)
+    bounds = chunk_bounds or [lo, hi]
+    dirs = [stage_dir(out, a, b) for a, b in zip(bounds[:-1], bounds[1:])]
+    rejects = pd.concat([all_rejects(d) for d in dirs], ignore_index=True)
+    aligned = [pd.read_parquet(d / "aligned.parquet") for d in dirs]
+    out = Path(out)
+    write_parquet(rejects, out / "rejects.parquet")
     write_parquet(pd.concat(aligned, ignore_index=True) if len(aligned) > 1 else aligned[0],
-                  Path(out) / "aligned.parquet")
-    summary["outputs"] = {"worklist": parts[-1]["worklist"]["path"],
-                          "aligned": str(Path(out) / "aligned.parquet"),
-                          "rejects": str(Path(out) / "rejects.parquet")}
-    write_json(summary, Path(out) / "run_summary.json")
+                  out / "aligned.parquet")
+    summary = {**summary, "interval": [lo.isoformat(), hi.isoformat()], "config": settings.source,
+               "caution": CAUTION, "rejects_by_reason": _reasons(rejects)}
+    summary["outputs"] = {"worklist": summary["worklist"]["path"], "aligned": str(out / "aligned.parquet"),
+                          "rejects": str(out / "rejects.parquet"), "summary": str(out / "run_summary.json")}
+    write_json(summary, out / "run_summary.json")
     return summary
 
 

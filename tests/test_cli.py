@@ -55,6 +55,19 @@ def test_internal_error_exits_1_without_a_traceback(tmp_path, capsys, monkeypatc
     assert "internal error (ZeroDivisionError)" in err and "Traceback" not in err
 
 
+def test_system_io_error_exits_1_and_says_to_rerun(tmp_path, capsys, monkeypatch):
+    import errno
+
+    import pipeline.run
+
+    def away(*a, **k):
+        raise OSError(errno.EIO, "Input/output error", "/mnt/lake/ecg")
+    monkeypatch.setattr(pipeline.run, "run_interval", away)
+    assert main(["run", "--lake", "x", "--out", str(tmp_path), *ARGS]) == 1
+    err = capsys.readouterr().err
+    assert "I/O error: Input/output error (/mnt/lake/ecg)" in err and "rerun" in err and len(err.splitlines()) == 1
+
+
 def test_validate_reports_rejects_over_the_whole_lake(tmp_path, capsys):
     lake = write_lake(tmp_path / "lake", ecg=[ecg_row("a"), ecg_row("b", qrs_ms=0.0)])
     assert main(["validate", "--lake", str(lake), "--out", str(tmp_path / "v")]) == 0

@@ -72,6 +72,23 @@ def test_corrupt_parquet_file_is_an_error_naming_the_file(tmp_path):
         read_table(tmp_path, c.ECG, DEFAULT, scope="night", window=NIGHT)
 
 
+def test_an_io_error_of_the_system_is_not_taken_for_bad_data(tmp_path, monkeypatch):
+    """A mount that is briefly away (EIO) must propagate as OSError so the scheduler retries it;
+    only a damaged file is a LakeError (bad data, no retry)."""
+    import errno
+
+    import pipeline.load as load
+
+    write_table(tmp_path, "ecg", [ecg_row()], "acquired_at")
+
+    def flaky(*args, **kwargs):
+        raise OSError(errno.EIO, "Input/output error")
+    monkeypatch.setattr(load.pq, "read_schema", flaky)
+    with pytest.raises(OSError) as caught:
+        read_table(tmp_path, c.ECG, DEFAULT, scope="night", window=NIGHT)
+    assert not isinstance(caught.value, LakeError) and caught.value.errno == errno.EIO
+
+
 def test_missing_table_folder_is_an_error_but_medication_is_optional(tmp_path):
     with pytest.raises(LakeError, match="ecg/"):
         read_table(tmp_path, c.ECG, DEFAULT, scope="night", window=NIGHT)

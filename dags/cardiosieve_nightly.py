@@ -1,0 +1,296 @@
+"""cardiosieve nightly screening as an Airflow 3 DAG: wiring only, the work is in pipeline/run.py.
+
+Each run screens the ECGs acquired in its data interval [start, end) (UTC). By default the interval
+is one UTC calendar day, [D-1 00:00, D 00:00), the same days as the lake's ecg/date=... partitions;
+the landing sensor then holds the run until `settle_min` after the interval's end and until the
+night's exports are in the lake, and fails with a clear message after `landing_timeout_min`.
+
+    check_exports_landed -> validate_contract -> quality_gate -> align -> screen
+        -> publish_worklist -> write_run_summary
+
+Tasks exchange counts and paths only (XCom lands in the Airflow database and the UI): never a
+patient row, identifier or value. Bad data (unreadable lake, missing required column, failed
+quality gate, unusable config or interval) fails the task at once, without retries; anything
+else (a flaky mount, a database that is briefly away) is retried with exponential back-off.
+
+Nothing here reads files, the network or the Airflow database at parse time: module level reads
+only environment variables, and pandas, Great Expectations and pipeline/ are imported inside the
+tasks. See docs/airflow.md for deployment, Params and backfills.
+"""
+from __future__ import annotations
+
+import os
+from datetime import timedelta
+
+import pendulum
+from airflow.sdk import Asset, BaseSensorOperator, CronDataIntervalTimetable, Param, dag, task
+
+DAG_ID = "cardiosieve_nightly"
+# Deployment settings read from the environment at parse time (no I/O); docs/airflow.md lists them.
+SCHEDULE_CRON = os.environ.get("CARDIOSIEVE_CRON", "0 0 * * *")          # interval bounds: UTC midnights
+SCHEDULE_TIMEZONE = os.environ.get("CARDIOSIEVE_TIMEZONE", "UTC")
+START_DATE = pendulum.parse(os.environ.get("CARDIOSIEVE_START_DATE", "2026-01-01T00:00:00Z"))
+CATCHUP = os.environ.get("CARDIOSIEVE_CATCHUP", "false").strip().lower() in ("1", "true", "yes")
+
+# The published worklist, for DAGs that should run after it changes (schedule=[WORKLIST]).
+WORKLIST = Asset(name="cardiosieve_worklist")
+
+# Other failures (I/O, database) are retried from 2 minutes, doubling (plus Airflow's jitter), at most
+# 30 minutes apart; after the third retry the task fails (local choice).
+RETRIES = 3
+RETRY_DELAY = timedelta(minutes=2)
+RETRY_BACKOFF = 2.0
+MAX_RETRY_DELAY = timedelta(minutes=30)
+TASK_TIMEOUT = timedelta(hours=2)      # a hung mount must not hold a worker slot all day
+POKE_INTERVAL = timedelta(minutes=10)
+
+PARAMS = {
+    "lake": Param(os.environ.get("CARDIOSIEVE_LAKE", "/data/lake"), type="string", minLength=1,
+                  description="Lake folder holding ecg/, ecg_lead/, lab/, patient/ (and optionally medication/)."),
+    "out": Param(os.environ.get("CARDIOSIEVE_OUT", "/data/cardiosieve"), type="string", minLength=1,
+                 description="Output folder: worklist.parquet, rejects.parquet, quality report, run summary."),
+    "config": Param(os.environ.get("CARDIOSIEVE_CONFIG", ""), type="string",
+                    description="Site configuration (TOML, docs/configuration.md); empty = built-in defaults."),
+    "db": Param("", type="string",
+                description="SQLAlchemy URL of the worklist database; empty = sqlite at OUT/worklist.sqlite "
+                            "(or the connection below). Put credentials in a connection, not here."),
+    "db_conn_id": Param(os.environ.get("CARDIOSIEVE_DB_CONN_ID", ""), type="string",
+                        description="Airflow connection (postgres or sqlite) holding the worklist database; "
+                                    "used when `db` is empty."),
+    "start": Param(None, type=["null", "string"],
+                   description="Explicit first instant screened (ISO 8601, UTC when no offset); with `end` it "
+                               "overrides the run's data interval. Needed for runs without one."),
+    "end": Param(None, type=["null", "string"], description="Explicit end of the interval, excluded."),
+    "settle_min": Param(120, type="integer", minimum=0, maximum=1440,
+                        description="Minutes after the interval's end before the exports count as landed "
+                                    "(late rows still arriving); 0 with a landing marker."),
+    "landing_timeout_min": Param(360, type="integer", minimum=0, maximum=2880,
+                                 description="Minutes after interval end + settle_min to wait for the "
+                                             "exports before failing."),
+    "landing_marker": Param("", type="string",
+                            description="File name the exporter writes into a partition when it is "
+                                        "complete (e.g. _SUCCESS); empty = any Parquet file counts."),
+}
+
+
+# ---------------------------------------------------------------------------------------------
+# Helpers: run inside tasks only
+
+def bad_data_errors() -> tuple[type[Exception], ...]:
+    """Failures a retry cannot fix: the input or the configuration is wrong."""
+    from pipeline.config import ConfigError
+    from pipeline.load import LakeError
+    from pipeline.normalise import ContractError
+    from pipeline.quality import QualityGateError
+    from pipeline.run import RunError
+
+    return ConfigError, ContractError, LakeError, QualityGateError, RunError
+
+
+def call_stage(fn, *args, **kwargs):
+    """Run one pipeline stage; bad data becomes AirflowFailException (no retries) with the
+    stage's one-line message, which names files, tables, columns, checks and counts only.
+    Anything else propagates and Airflow retries it with back-off."""
+    from airflow.sdk.exceptions import AirflowFailException
+
+    try:
+        return fn(*args, **kwargs)
+    except bad_data_errors() as exc:
+        raise AirflowFailException(f"{type(exc).__name__}: {exc}") from None
+
+
+def run_interval_bounds(context) -> tuple[str, str]:
+    """[start, end) of this run as ISO strings: explicit Params when given, else the data interval.
+    A run with neither (e.g. a manual trigger without logical date) fails; never "now"."""
+    from airflow.sdk.exceptions import AirflowFailException
+    from pipeline.run import RunError, interval
+
+    params = context["params"]
+    start, end = params.get("start"), params.get("end")
+    if bool(start) != bool(end):
+        raise AirflowFailException("RunError: set both Params `start` and `end`, or neither")
+    if not start:
+        lo, hi = context.get("data_interval_start"), context.get("data_interval_end")
+        if lo is None or hi is None or lo == hi:
+            raise AirflowFailException("RunError: this run has no data interval; trigger it with a "
+                                       "logical date or set Params `start` and `end`")
+        start, end = lo.isoformat(), hi.isoformat()
+    try:
+        lo, hi = interval(start, end)
+    except RunError as exc:
+        raise AirflowFailException(f"RunError: {exc}") from None
+    return lo.isoformat(), hi.isoformat()
+
+
+def missing_exports(lake: str, start: str, end: str, marker: str = "") -> list[str]:
+    """Folders (relative to the lake) whose night's ECG export has not landed, [] when it has.
+
+    A date-partitioned lake needs ecg/date=YYYY-MM-DD/ for every UTC day that [start, end)
+    touches, holding a Parquet file (or `marker`, when given); an unpartitioned ecg/ folder
+    counts as landed when it holds a Parquet file (it cannot tell one night from another)."""
+    from pathlib import Path
+
+    import pandas as pd
+
+    root = Path(lake) / "ecg"
+    if not root.is_dir():
+        return ["ecg/"]
+    lo, hi = pd.Timestamp(start), pd.Timestamp(end)
+    days = pd.date_range(lo.floor("D"), (hi - pd.Timedelta(microseconds=1)).floor("D"), freq="D")
+    partitioned = any(p.name.startswith("date=") for p in root.iterdir() if p.is_dir())
+    if not partitioned:
+        return [] if any(root.glob("*.parquet")) else ["ecg/"]
+    missing = []
+    for day in days:                       # a handful of days, not rows
+        part = root / f"date={day:%Y-%m-%d}"
+        done = (part / marker).exists() if marker else part.is_dir() and any(part.rglob("*.parquet"))
+        if not done:
+            missing.append(f"ecg/{part.name}/" + (marker if marker else ""))
+    return missing
+
+
+def worklist_db_url(params) -> str | None:
+    """The worklist database: Param `db`, else the Airflow connection `db_conn_id`, else None
+    (stage_worklist then uses sqlite at OUT/worklist.sqlite)."""
+    if params.get("db"):
+        return params["db"]
+    conn_id = params.get("db_conn_id")
+    if not conn_id:
+        return None
+    from airflow.sdk import BaseHook
+    from airflow.sdk.exceptions import AirflowFailException, AirflowNotFoundException
+    from sqlalchemy.engine import URL
+
+    try:
+        conn = BaseHook.get_connection(conn_id)
+    except AirflowNotFoundException:       # a typo in the Param: no retry will define it
+        raise AirflowFailException(f"ConfigError: Airflow connection {conn_id!r} is not defined") from None
+    kind = (conn.conn_type or "").lower()
+    if kind == "sqlite":                   # Airflow's sqlite connections keep the file path in host
+        return f"sqlite:///{conn.host}"
+    if kind in ("postgres", "postgresql"):
+        return URL.create("postgresql+psycopg", username=conn.login or None, password=conn.password or None,
+                          host=conn.host or None, port=conn.port or None,
+                          database=conn.schema or None).render_as_string(hide_password=False)
+    raise AirflowFailException(f"ConfigError: connection {conn_id!r} has type {kind!r}; "
+                               "cardiosieve takes postgres or sqlite")
+
+
+class ExportsLandedSensor(BaseSensorOperator):
+    """Waits (reschedule mode: no worker slot held) until the interval's ECG exports are in the
+    lake and `settle_min` has passed since the interval's end; fails without retry, naming the
+    missing partitions, once `landing_timeout_min` more has passed. The deadline is anchored to
+    the interval's end, so a backfill of an old night whose export never came fails at once."""
+
+    def poke(self, context) -> bool:
+        from airflow.sdk.exceptions import AirflowFailException
+
+        params = context["params"]
+        start, end = run_interval_bounds(context)
+        end_ts = pendulum.parse(end)
+        ready_at = end_ts.add(minutes=params["settle_min"])
+        deadline = ready_at.add(minutes=params["landing_timeout_min"])
+        now = pendulum.now("UTC")          # when to start and give up only; never the data window
+        if now < ready_at:
+            self.log.info("interval ends %s; waiting until %s for late exports", end, ready_at.isoformat())
+            return False
+        missing = missing_exports(params["lake"], start, end, params["landing_marker"])
+        if not missing:
+            self.log.info("exports landed for [%s, %s)", start, end)
+            return True
+        if now >= deadline:
+            raise AirflowFailException(
+                f"exports for [{start}, {end}) have not landed in lake {params['lake']} by "
+                f"{deadline.isoformat()}: missing {', '.join(missing)}")
+        self.log.info("still missing %d partition(s): %s", len(missing), ", ".join(missing))
+        return False
+
+
+# ---------------------------------------------------------------------------------------------
+# The DAG
+
+@dag(
+    dag_id=DAG_ID,
+    schedule=CronDataIntervalTimetable(SCHEDULE_CRON, timezone=SCHEDULE_TIMEZONE),
+    start_date=START_DATE,
+    catchup=CATCHUP,
+    max_active_runs=1,        # nights share OUT and the worklist database; episodes fold in order
+    params=PARAMS,
+    tags=["cardiosieve"],
+    default_args={"retries": RETRIES, "retry_delay": RETRY_DELAY, "retry_exponential_backoff": RETRY_BACKOFF,
+                  "max_retry_delay": MAX_RETRY_DELAY, "execution_timeout": TASK_TIMEOUT},
+    doc_md=__doc__,
+)
+def cardiosieve_nightly():
+    """Screen the ECGs acquired in this run's interval; publish the worklist for human review."""
+
+    landed = ExportsLandedSensor(task_id="check_exports_landed", mode="reschedule",
+                                 poke_interval=POKE_INTERVAL, timeout=timedelta(days=3))
+
+    @task
+    def validate_contract(**context) -> dict:
+        """Read the night and its context against the lake contract; write stage files and rejects."""
+        from pipeline.run import stage_load
+
+        params = context["params"]
+        start, end = run_interval_bounds(context)
+        loaded = call_stage(stage_load, params["lake"], params["out"], start, end, config=params["config"] or None)
+        return {**loaded, "start": start, "end": end}
+
+    @task
+    def quality_gate(loaded: dict, params=None) -> dict:
+        """Great Expectations gate; writes OUT/quality.json and .html even when it stops the run."""
+        from pipeline.run import stage_quality
+
+        return call_stage(stage_quality, params["lake"], params["out"], loaded["start"], loaded["end"],
+                          config=params["config"] or None)
+
+    @task
+    def align(loaded: dict, quality: dict, params=None) -> dict:
+        from pipeline.run import stage_align
+
+        return call_stage(stage_align, params["out"], loaded["start"], loaded["end"],
+                          config=params["config"] or None, lake=params["lake"])
+
+    @task
+    def screen(loaded: dict, aligned: dict, params=None) -> dict:
+        from pipeline.run import stage_screen
+
+        return call_stage(stage_screen, params["out"], loaded["start"], loaded["end"], config=params["config"] or None)
+
+    @task(outlets=[WORKLIST])
+    def publish_worklist(loaded: dict, screened: dict, params=None, outlet_events=None) -> dict:
+        """Build the worklist items, upsert them in one transaction, write OUT/worklist.parquet."""
+        from pipeline.run import stage_worklist
+
+        published = call_stage(stage_worklist, params["out"], loaded["start"], loaded["end"],
+                               config=params["config"] or None, db=worklist_db_url(params))
+        outlet_events[WORKLIST].extra = {"interval": [loaded["start"], loaded["end"]],
+                                         "items_tonight": published["items_tonight"]}
+        return published
+
+    @task
+    def write_run_summary(loaded: dict, quality: dict, aligned: dict, screened: dict, published: dict,
+                          params=None) -> dict:
+        """OUT/rejects.parquet (every reject of the interval), OUT/aligned.parquet and
+        OUT/run_summary.json, as the CLI writes them; returns the outputs' paths."""
+        from pipeline.run import stage_finish
+
+        tables = loaded["tables"]
+        tables["ecg"]["screened"] = aligned["aligned"]
+        summary = {"tables": tables, "quality": quality, "aligned": aligned,
+                   "findings": screened["by_screen_tier"], "worklist": published}
+        done = call_stage(stage_finish, params["out"], loaded["start"], loaded["end"], summary,
+                          config=params["config"] or None)
+        return done["outputs"]
+
+    loaded = validate_contract()
+    quality = quality_gate(loaded)
+    aligned = align(loaded, quality)
+    screened = screen(loaded, aligned)
+    published = publish_worklist(loaded, screened)
+    landed >> loaded
+    write_run_summary(loaded, quality, aligned, screened, published)
+
+
+cardiosieve_nightly()

@@ -1,0 +1,292 @@
+"""The nightly DAG: it parses cleanly and cheaply, runs the sample lake's last night end to end
+with dag.test() against a throwaway metadata database, reruns an interval without changing the
+worklist, stops on bad data without retrying or publishing, and logs no patient identifier."""
+from __future__ import annotations
+
+import importlib.util
+import json
+import pathlib
+import shutil
+import sqlite3
+import subprocess
+import sys
+
+import pandas as pd
+import pendulum
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
+import pytest
+
+REPO = pathlib.Path(__file__).resolve().parents[2]
+DAG_FILE = REPO / "dags" / "cardiosieve_nightly.py"
+SAMPLE_LAKE = REPO / "sample_lake"
+SITE_CONFIG = SAMPLE_LAKE / "site.toml"
+# The sample lake's last night (sample_lake/README.md): [2026-11-29T00:00Z, 2026-11-30T00:00Z).
+NIGHT_START = pendulum.datetime(2026, 11, 29, tz="UTC")
+NIGHT_END = pendulum.datetime(2026, 11, 30, tz="UTC")
+# A scheduled-style run at 03:00 on the 30th: the daily timetable gives it the 29th as interval.
+LOGICAL_DATE = pendulum.datetime(2026, 11, 30, 3, tz="UTC")
+TASKS = ["check_exports_landed", "validate_contract", "quality_gate", "align", "screen",
+         "publish_worklist", "write_run_summary"]
+
+
+def conf(lake, out, **extra) -> dict:
+    # settle 0: the interval ended long ago; the Param defaults are checked in the parse test.
+    return {"lake": str(lake), "out": str(out), "config": str(SITE_CONFIG), "settle_min": 0, **extra}
+
+
+def states(dr) -> dict[str, str]:
+    return {ti.task_id: str(ti.state) for ti in dr.get_task_instances()}
+
+
+def tries(dr) -> dict[str, int]:
+    return {ti.task_id: ti.try_number for ti in dr.get_task_instances()}
+
+
+def patient_ids() -> list[str]:
+    return pd.read_parquet(SAMPLE_LAKE / "patient", columns=["patient_id"])["patient_id"].dropna().unique().tolist()
+
+
+def run_logs(capfd, caplog) -> str:
+    """Everything the run logged: dag.test() runs tasks in-process, so task logs reach pytest's
+    log capture (records routed through logging) and its output capture (printed directly)."""
+    out, err = capfd.readouterr()
+    return out + err + caplog.text
+
+
+def leaked(text: str, ids: list[str]) -> list[str]:
+    return [i for i in ids if i in text]
+
+
+def broken_lake(tmp_path, break_night) -> pathlib.Path:
+    """A copy of the sample lake (2 MB) whose last night's ECG files go through `break_night`."""
+    lake = tmp_path / "lake"
+    shutil.copytree(SAMPLE_LAKE, lake)
+    for f in sorted((lake / "ecg" / "date=2026-11-29").glob("*.parquet")):
+        break_night(f)
+    return lake
+
+
+def load_dag_module():
+    spec = importlib.util.spec_from_file_location("cardiosieve_nightly_under_test", DAG_FILE)
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+# ---------------------------------------------------------------------------------------------
+# Parsing
+
+def test_dag_folder_imports_without_errors_or_cycles_and_wires_the_expected_tasks(dagbag):
+    assert dagbag.import_errors == {}
+    assert dagbag.dag_ids == ["cardiosieve_nightly"]
+    dag = dagbag.dags["cardiosieve_nightly"]
+    dag.check_cycle()
+    assert sorted(dag.task_ids) == sorted(TASKS)
+    # One straight line: nothing is published before the quality gate has passed.
+    for before, after in zip(TASKS, TASKS[1:]):
+        assert before in dag.get_task(after).upstream_task_ids
+    assert dag.get_task("publish_worklist").upstream_task_ids == {"validate_contract", "screen"}
+    assert dag.max_active_runs == 1
+
+
+def test_params_have_documented_defaults_and_tasks_retry_with_backoff(dagbag):
+    dag = dagbag.dags["cardiosieve_nightly"]
+    p = dag.params
+    # Defaults documented in docs/airflow.md (none of the CARDIOSIEVE_* variables is set here).
+    assert {k: p[k] for k in ("lake", "out", "config", "db", "db_conn_id", "start", "end")} == {
+        "lake": "/data/lake", "out": "/data/cardiosieve", "config": "", "db": "", "db_conn_id": "",
+        "start": None, "end": None}
+    assert (p["settle_min"], p["landing_timeout_min"], p["landing_marker"]) == (120, 360, "")
+    sensor = dag.get_task("check_exports_landed")
+    assert sensor.mode == "reschedule"
+    for t in dag.tasks:
+        assert t.retries == 3 and t.retry_exponential_backoff == 2.0
+
+
+def test_parsing_the_dag_file_imports_neither_pandas_nor_the_pipeline():
+    # DAG files are re-parsed every few seconds: heavy imports belong in the tasks. (Airflow
+    # itself imports SQLAlchemy, so that one says nothing about the DAG file.)
+    code = ("import runpy, sys; runpy.run_path(sys.argv[1]); "
+            "print(sorted(m for m in ('pandas', 'great_expectations', 'pipeline', 'screens', 'pyarrow') "
+            "if m in sys.modules))")
+    got = subprocess.run([sys.executable, "-c", code, str(DAG_FILE)], capture_output=True, text=True, check=True)
+    assert got.stdout.strip().splitlines()[-1] == "[]"
+
+
+# ---------------------------------------------------------------------------------------------
+# Runs
+
+def test_nightly_run_publishes_the_worklist_and_logs_no_patient_identifier(nightly, airflow_db, tmp_path,
+                                                                          capfd, caplog):
+    out = tmp_path / "out"
+    dr = nightly.test(logical_date=LOGICAL_DATE, run_conf=conf(SAMPLE_LAKE, out))
+    logs = run_logs(capfd, caplog)
+    assert dr.state == "success", states(dr)
+    assert (dr.data_interval_start, dr.data_interval_end) == (NIGHT_START, NIGHT_END)
+
+    worklist = pd.read_parquet(out / "worklist.parquet")
+    with sqlite3.connect(out / "worklist.sqlite") as db:
+        in_db = db.execute("select count(*) from worklist_item").fetchone()[0]
+    # The sample night holds at least one planted case of every screen (sample_lake/README.md).
+    assert len(worklist) == in_db > 0
+    assert set(worklist["screen"]) == {"hyperkalemia", "long_qt", "st_deviation"}
+    summary = json.loads((out / "run_summary.json").read_text())
+    assert summary["interval"] == [NIGHT_START.isoformat(), NIGHT_END.isoformat()]
+    assert summary["worklist"]["db_counts"]["inserted"] == in_db
+    assert summary["quality"]["failed"] == 0
+    rejects = pd.read_parquet(out / "rejects.parquet")
+    assert len(rejects) == sum(summary["rejects_by_reason"].values()) > 0
+
+    # Privacy: no patient identifier in the task logs (dag.test logs inline), the log folder,
+    # the quality report or the run summary.
+    text = logs
+    assert "[DAG TEST] end task task_id=write_run_summary" in text and "quality: table ecg" in text
+    files = [out / "quality.json", out / "quality.html", out / "run_summary.json",
+             *(p for p in (airflow_db / "logs").rglob("*") if p.is_file())]
+    text += "".join(f.read_text(encoding="utf-8", errors="replace") for f in files)
+    ids = patient_ids()
+    assert leaked(text, ids) == []
+    # The scan can fail: the worklist (which rightly names patients) trips it.
+    assert leaked(" ".join(worklist["patient_id"]), ids)
+
+
+def test_rerun_with_explicit_interval_and_a_connection_reproduces_the_cli_worklist(nightly, tmp_path, monkeypatch):
+    from pipeline.run import run_interval
+
+    reference = run_interval(str(SAMPLE_LAKE), str(tmp_path / "cli"), NIGHT_START.isoformat(),
+                             NIGHT_END.isoformat(), config=str(SITE_CONFIG))
+    db_file = tmp_path / "via-connection.sqlite"
+    monkeypatch.setenv("AIRFLOW_CONN_CARDIOSIEVE_WORKLIST", json.dumps({"conn_type": "sqlite", "host": str(db_file)}))
+    out = tmp_path / "dag"
+    # No logical date, so no data interval: the Params give [start, end).
+    run = conf(SAMPLE_LAKE, out, start="2026-11-29T00:00:00Z", end="2026-11-30", db_conn_id="cardiosieve_worklist")
+    first = nightly.test(logical_date=None, run_conf=run)
+    assert first.state == "success", states(first)
+    worklist = pd.read_parquet(out / "worklist.parquet")
+    second = nightly.test(logical_date=None, run_conf=run)
+    assert second.state == "success", states(second)
+
+    assert db_file.exists() and not (out / "worklist.sqlite").exists()
+    pd.testing.assert_frame_equal(pd.read_parquet(out / "worklist.parquet"), worklist)
+    pd.testing.assert_frame_equal(worklist, pd.read_parquet(tmp_path / "cli" / "worklist.parquet"))
+    summary = json.loads((out / "run_summary.json").read_text())
+    n = reference["worklist"]["items_tonight"]
+    assert summary["worklist"]["db_counts"] == {"inserted": 0, "updated": 0, "reopened": 0, "unchanged": n}
+    # Same summary as the CLI's, but for where the files went.
+    for key in ("interval", "config", "tables", "rejects_by_reason", "findings", "aligned", "caution"):
+        assert summary[key] == json.loads(json.dumps(reference[key], default=str)), key
+
+
+def test_missing_required_column_fails_validation_once_and_publishes_nothing(nightly, tmp_path, capfd, caplog):
+    def drop_qt(f):
+        if f.name == "part-1.parquet":
+            t = pq.read_table(f)
+            pq.write_table(t.drop_columns(["qt_ms"]), f)
+
+    out = tmp_path / "out"
+    dr = nightly.test(logical_date=LOGICAL_DATE, run_conf=conf(broken_lake(tmp_path, drop_qt), out))
+    text = run_logs(capfd, caplog)
+    assert dr.state == "failed"
+    got = states(dr)
+    assert got["check_exports_landed"] == "success" and got["validate_contract"] == "failed"
+    assert {got[t] for t in TASKS[2:]} == {"upstream_failed"}
+    assert tries(dr)["validate_contract"] == 1            # bad data: no retry
+    assert not (out / "worklist.parquet").exists() and not (out / "worklist.sqlite").exists()
+    assert not (out / "run_summary.json").exists()
+    # The message names the table, the file and the column.
+    line = next(x for x in text.splitlines() if "lacks required column" in x)
+    assert "ContractError: table ecg" in line and "date=2026-11-29/part-1.parquet" in line and "qt_ms" in line
+
+
+def test_failed_quality_gate_writes_the_report_and_publishes_nothing(nightly, tmp_path, capfd, caplog):
+    def qt_in_wrong_unit(f):
+        # QT of every ECG that night at 0.4 times its value (~150 ms): inside the contract's
+        # impossible-value bounds (100..1000 ms) but under the gate's plausible 200 ms
+        # (pipeline/quality.py ECG_RANGES), for far more than 5 % of rows: a broken table.
+        t = pq.read_table(f)
+        i = t.schema.get_field_index("qt_ms")
+        pq.write_table(t.set_column(i, "qt_ms", pc.multiply(t.column(i), 0.4)), f)
+
+    out = tmp_path / "out"
+    dr = nightly.test(logical_date=LOGICAL_DATE, run_conf=conf(broken_lake(tmp_path, qt_in_wrong_unit), out))
+    text = run_logs(capfd, caplog)
+    assert dr.state == "failed"
+    got = states(dr)
+    assert got["validate_contract"] == "success" and got["quality_gate"] == "failed"
+    assert got["publish_worklist"] == "upstream_failed" and tries(dr)["quality_gate"] == 1
+    assert not (out / "worklist.parquet").exists() and not (out / "worklist.sqlite").exists()
+    report = json.loads((out / "quality.json").read_text())
+    assert report["passed"] is False and any("qt_ms" in m for m in report["critical_failures"])
+    line = next(x for x in text.splitlines() if "QualityGateError: quality gate stopped the run" in x)
+    assert "ecg" in line and "qt_ms" in line
+    assert leaked(text + (out / "quality.html").read_text(), patient_ids()) == []
+
+
+def test_exports_that_never_landed_fail_the_landing_check_by_name(nightly, tmp_path, capfd, caplog):
+    # The sample lake starts on 2026-10-31; the night of 2026-10-01 never landed, and its
+    # deadline (interval end + settle + timeout) is long past, so the sensor fails at once.
+    dr = nightly.test(logical_date=pendulum.datetime(2026, 10, 2, 3, tz="UTC"),
+                      run_conf=conf(SAMPLE_LAKE, tmp_path / "out", landing_timeout_min=0))
+    text = run_logs(capfd, caplog)
+    assert dr.state == "failed" and states(dr)["check_exports_landed"] == "failed"
+    assert tries(dr)["check_exports_landed"] == 1
+    assert "have not landed" in text and "missing ecg/date=2026-10-01/" in text
+    assert not (tmp_path / "out").exists()
+
+
+def test_a_run_without_interval_or_start_end_params_fails_instead_of_using_now(nightly, tmp_path, capfd, caplog):
+    dr = nightly.test(logical_date=None, run_conf=conf(SAMPLE_LAKE, tmp_path / "out"))
+    text = run_logs(capfd, caplog)
+    assert dr.state == "failed" and states(dr)["check_exports_landed"] == "failed"
+    assert "this run has no data interval" in text
+
+
+# ---------------------------------------------------------------------------------------------
+# The landing check and the database URL (helpers of the DAG file, called directly)
+
+def test_landing_check_wants_every_utc_day_of_the_interval_and_the_marker_when_named(tmp_path):
+    m = load_dag_module()
+    for day in ("2026-11-28", "2026-11-29"):
+        (tmp_path / "ecg" / f"date={day}").mkdir(parents=True)
+    (tmp_path / "ecg" / "date=2026-11-28" / "part-0.parquet").write_bytes(b"")
+    assert m.missing_exports(str(tmp_path), "2026-11-28T00:00:00+00:00", "2026-11-29T00:00:00+00:00") == []
+    # Half-open: an interval ending at midnight does not need the next day's partition; one
+    # ending at 02:00 does, and an empty partition folder has not landed.
+    assert m.missing_exports(str(tmp_path), "2026-11-28T02:00:00+00:00", "2026-11-29T02:00:00+00:00") == \
+        ["ecg/date=2026-11-29/"]
+    assert m.missing_exports(str(tmp_path), "2026-11-28T00:00:00+00:00", "2026-11-29T00:00:00+00:00",
+                             marker="_SUCCESS") == ["ecg/date=2026-11-28/_SUCCESS"]
+    (tmp_path / "ecg" / "date=2026-11-28" / "_SUCCESS").write_bytes(b"")
+    assert m.missing_exports(str(tmp_path), "2026-11-28T00:00:00+00:00", "2026-11-29T00:00:00+00:00",
+                             marker="_SUCCESS") == []
+    assert m.missing_exports(str(tmp_path / "nowhere"), "2026-11-28", "2026-11-29") == ["ecg/"]
+
+
+def test_unpartitioned_lake_counts_as_landed_when_ecg_holds_a_file(tmp_path):
+    m = load_dag_module()
+    (tmp_path / "ecg").mkdir()
+    assert m.missing_exports(str(tmp_path), "2026-11-28", "2026-11-29") == ["ecg/"]
+    (tmp_path / "ecg" / "ecg.parquet").write_bytes(b"")
+    assert m.missing_exports(str(tmp_path), "2026-11-28", "2026-11-29") == []
+
+
+@pytest.mark.parametrize("conn, url", [
+    ({"conn_type": "postgres", "host": "db.example", "port": 5432, "login": "cs", "password": "pw",
+      "schema": "worklist"}, "postgresql+psycopg://cs:pw@db.example:5432/worklist"),
+    ({"conn_type": "sqlite", "host": "/srv/cs/worklist.sqlite"}, "sqlite:////srv/cs/worklist.sqlite"),
+])
+def test_worklist_database_comes_from_the_param_else_the_connection(conn, url, monkeypatch, airflow_db):
+    m = load_dag_module()
+    monkeypatch.setenv("AIRFLOW_CONN_CS_TEST_DB", json.dumps(conn))
+    assert m.worklist_db_url({"db": "", "db_conn_id": "cs_test_db"}) == url
+    assert m.worklist_db_url({"db": "sqlite:///x.sqlite", "db_conn_id": "cs_test_db"}) == "sqlite:///x.sqlite"
+    assert m.worklist_db_url({"db": "", "db_conn_id": ""}) is None
+
+
+def test_an_undefined_connection_is_a_configuration_error_not_retried(airflow_db):
+    from airflow.sdk.exceptions import AirflowFailException
+
+    m = load_dag_module()
+    with pytest.raises(AirflowFailException, match="connection 'no_such_connection' is not defined"):
+        m.worklist_db_url({"db": "", "db_conn_id": "no_such_connection"})
