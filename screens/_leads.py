@@ -37,31 +37,29 @@ CONTIGUOUS_PAIRS = pairs(LIMB_CIRCLE) + pairs(PRECORDIAL_CHAIN)
 
 def wide(leads: pd.DataFrame, ecg_ids: pd.Series | np.ndarray, columns: Sequence[str]) -> dict[str, pd.DataFrame]:
     """For each value column, a float frame (one row per entry of `ecg_ids`, positional; one column per
-    lead of ALL_LEADS plus "-aVR" = -aVR). Missing ECGs or leads are NaN; a repeated (ecg_id, lead)
-    keeps its first row (the quality checks report duplicates)."""
+    lead of ALL_LEADS plus "-aVR" = -aVR). Missing ECGs (None, NaN or an id without lead rows) or
+    leads are NaN; a repeated (ecg_id, lead) keeps its first row (the quality checks report
+    duplicates). Vectorised: ids and leads become integer positions, values are scattered into one
+    array per column."""
+    names = [*ALL_LEADS, "-aVR"]
     ids = pd.Series(np.asarray(ecg_ids, dtype=object)).astype("str")
-    n = len(ids)
-    empty = {c: pd.DataFrame(np.full((n, len(ALL_LEADS) + 1), np.nan), columns=[*ALL_LEADS, "-aVR"]) for c in columns}
-    if leads is None or len(leads) == 0 or n == 0:
-        return empty
-    wanted = set(ids.dropna())
-    sub = leads.loc[isin(leads["ecg_id"], wanted), ["ecg_id", "lead", *columns]]
-    if len(sub) == 0:
-        return empty
-    sub = sub.assign(ecg_id=sub["ecg_id"].astype("str"), lead=sub["lead"].astype("str"))
-    sub = sub.drop_duplicates(["ecg_id", "lead"], keep="first")
+    uniq_codes, uniq = pd.factorize(ids)              # -1 for a missing id
+    n, m = len(ids), len(uniq)
+    grids = {c: np.full((m + 1, len(ALL_LEADS)), np.nan) for c in columns}   # row m stays NaN
+    if leads is not None and len(leads) and m:
+        row = pd.Index(uniq).get_indexer(leads["ecg_id"].astype("str"))
+        col = pd.Index(ALL_LEADS).get_indexer(leads["lead"].astype("str"))
+        hit = np.flatnonzero((row >= 0) & (col >= 0))
+        _, first = np.unique(row[hit] * len(ALL_LEADS) + col[hit], return_index=True)
+        hit = hit[first]                              # first row of each (ecg_id, lead)
+        for c in columns:
+            vals = pd.to_numeric(leads[c], errors="coerce").to_numpy(dtype=float, na_value=np.nan)
+            grids[c][row[hit], col[hit]] = vals[hit]
+    take = np.where(uniq_codes >= 0, uniq_codes, m)
     out = {}
     for c in columns:
-        vals = pd.to_numeric(sub[c], errors="coerce").astype(float)
-        w = (
-            pd.DataFrame({"ecg_id": sub["ecg_id"].to_numpy(), "lead": sub["lead"].to_numpy(), "v": vals.to_numpy()})
-            .pivot(index="ecg_id", columns="lead", values="v")
-            .reindex(index=ids.to_numpy(), columns=ALL_LEADS)
-        )
-        w = w.astype(float).reset_index(drop=True)
-        w.columns = list(ALL_LEADS)
-        w["-aVR"] = -w["aVR"]
-        out[c] = w
+        g = grids[c][take]
+        out[c] = pd.DataFrame(np.column_stack([g, -g[:, ALL_LEADS.index("aVR")]]), columns=names)
     return out
 
 

@@ -117,10 +117,10 @@ def screen_hyperkalemia(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules
     qrs, prior_qrs = num(aligned, "qrs_ms"), num(aligned, "prior_qrs_ms")
     hemolyzed, _ = flag(aligned, "k_hemolyzed")
     prior_ids = text(aligned, "prior_ecg_id")
-    has_prior = np.array([p is not None for p in prior_ids], dtype=bool)
+    has_prior = pd.notna(prior_ids)
 
     now = wide(leads, aligned["ecg_id"].to_numpy(), ["t_amp_uv", "p_amp_uv"])
-    before = wide(leads, np.array([p if p is not None else "" for p in prior_ids], dtype=object), ["t_amp_uv"])
+    before = wide(leads, prior_ids, ["t_amp_uv"])
     t_now, t_prior = now["t_amp_uv"][T_LEADS], before["t_amp_uv"][T_LEADS]
     p_ii = now["p_amp_uv"]["II"].to_numpy()
 

@@ -345,10 +345,10 @@ def screen_st_deviation(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules
     qrs, prior_qrs = num(aligned, "qrs_ms"), num(aligned, "prior_qrs_ms")
     paced, _ = flag(aligned, "paced")
     prior_ids = text(aligned, "prior_ecg_id")
-    has_prior = np.array([p is not None for p in prior_ids], dtype=bool)
+    has_prior = pd.notna(prior_ids)
     cols = ["st_j_uv", "r_amp_uv", "s_amp_uv"]
     now = wide(leads, aligned["ecg_id"].to_numpy(), cols)
-    before = wide(leads, np.array([p if p is not None else "" for p in prior_ids], dtype=object), cols)
+    before = wide(leads, prior_ids, cols)
     spec = _cut_points(r, female, male, sex_unknown, age)
 
     ev = _evaluate(now["st_j_uv"], now["r_amp_uv"], now["s_amp_uv"], qrs, paced, female, sex_unknown, spec, r)
