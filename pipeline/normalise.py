@@ -109,7 +109,7 @@ def _split(frame, table, problems, scope, in_scope) -> Normalised:
     rejects = pd.DataFrame({
         "table": table.name,
         "scope": scope,
-        "row_key": _row_key(frame, table)[bad],
+        "row_key": _row_key(frame.loc[bad], table),   # keys of rejected rows only
         "file": frame.loc[bad, FILE_COLUMN].to_numpy(),
         "column": problems.column[bad],
         "reason": problems.reason[bad],
