@@ -271,8 +271,10 @@ def stage_worklist(out, start, end, config=None, db=None, settings: Settings | N
     """Fold findings into worklist items, upsert them into the database in one transaction, and
     write OUT/worklist.parquet (the database's ranked items) atomically."""
     from pipeline import store, worklist
+    from screens.criteria import load_rules
 
     settings = settings or load_settings(config)
+    rules = load_rules(settings.rules or None, source_name=settings.source)
     lo, hi = interval(start, end)
     d = stage_dir(out, lo, hi)
     findings = pd.read_parquet(d / "findings.parquet")
@@ -283,7 +285,8 @@ def stage_worklist(out, start, end, config=None, db=None, settings: Settings | N
         existing = store.read_items(engine, patient_ids=patients)
         run_id = f"{lo:%Y%m%dT%H%M%SZ}_{hi:%Y%m%dT%H%M%SZ}"
         items = worklist.build_items(findings, aligned, existing, run_id=run_id, now=hi,
-                                     episode_h=settings.windows["episode_h"])
+                                     episode_h=settings.windows["episode_h"],
+                                     explainers=worklist.explainers_for(rules))
         db_counts = store.upsert_items(engine, items)
         ranked = store.read_items(engine)
     finally:

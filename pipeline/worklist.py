@@ -259,10 +259,12 @@ def apply_reopen_rule(items: pd.DataFrame, stored: pd.DataFrame | None) -> pd.Da
 # Explained away: one hook per screen. Each takes the active items of its screen and the aligned
 # table and returns a reason (str) per item, NaN where the item is not explained away.
 # ---------------------------------------------------------------------------------------------
-def explain_hyperkalemia(items: pd.DataFrame, aligned: pd.DataFrame) -> pd.Series:
+def explain_hyperkalemia(items: pd.DataFrame, aligned: pd.DataFrame,
+                         k_normal_below: float = K_BACK_TO_NORMAL_BELOW_MMOL_L) -> pd.Series:
     """An item decided by a haemolysed potassium is explained away when a later potassium of the
     same patient, from a specimen known not to be haemolysed (NA does not count), is below
-    5.5 mmol/L [UKKA-2020]: haemolysis raises measured potassium (pseudohyperkalaemia).
+    `k_normal_below` (the screen's mild band, 5.5 mmol/L [UKKA-2020], or the site's override;
+    see explainers_for): haemolysis raises measured potassium (pseudohyperkalaemia).
 
     The deciding potassium (k_mmol_l, k_hemolyzed, k_offset_min, k_result_id) comes from the
     item's evidence values, else from the aligned row of its ECG; the later ones from the aligned
@@ -294,7 +296,7 @@ def explain_hyperkalemia(items: pd.DataFrame, aligned: pd.DataFrame) -> pd.Serie
     later = aligned[aligned["k_mmol_l"].notna()].copy()
     later["later_at"] = _utc(later["acquired_at"]) + pd.to_timedelta(later["k_offset_min"], unit="min")
     not_haem = later["k_hemolyzed"].astype("boolean").eq(False).fillna(False)
-    later = later[not_haem & (later["k_mmol_l"] < K_BACK_TO_NORMAL_BELOW_MMOL_L)]
+    later = later[not_haem & (later["k_mmol_l"] < k_normal_below)]
     later["later_result"] = later["k_result_id"].astype("str") if "k_result_id" in later else np.nan
     later["patient_id"] = later["patient_id"].astype(str)
     later = later.drop_duplicates(["patient_id", "later_at", "k_mmol_l"])
@@ -315,6 +317,15 @@ def explain_hyperkalemia(items: pd.DataFrame, aligned: pd.DataFrame) -> pd.Serie
 EXPLAINERS: dict[str, Callable[[pd.DataFrame, pd.DataFrame], pd.Series]] = {
     "hyperkalemia": explain_hyperkalemia,
 }
+
+
+def explainers_for(rules) -> dict[str, Callable[[pd.DataFrame, pd.DataFrame], pd.Series]]:
+    """EXPLAINERS with the thresholds of the run's rules (screens/rules.toml plus site overrides),
+    so that "back to normal" means below the same band the screen flags from."""
+    from functools import partial
+
+    return {**EXPLAINERS,
+            "hyperkalemia": partial(explain_hyperkalemia, k_normal_below=rules["hyperkalemia"]["k_mild"].value)}
 
 
 def apply_explainers(items: pd.DataFrame, aligned: pd.DataFrame | None, explainers=None) -> pd.Series:

@@ -250,6 +250,20 @@ def test_repeat_that_is_not_clean_and_normal_does_not_explain(later):
     assert build(f, al).iloc[0]["status"] == STATUS_OPEN
 
 
+def test_back_to_normal_follows_the_sites_mild_band():
+    from pipeline.worklist import explainers_for
+    from screens.criteria import load_rules
+
+    f = findings(finding("e1", "p1", at="2026-03-01 10:00", values=HAEMOLYSED))
+    al = aligned({"ecg_id": "e1", "patient_id": "p1", "acquired_at": "2026-03-01 10:00", **HAEMOLYSED},
+                 {"ecg_id": "e2", "patient_id": "p1", "acquired_at": "2026-03-01 14:00", "k_offset_min": 0.0,
+                  "k_result_id": "k-2", "k_mmol_l": 5.6, "k_hemolyzed": False})
+    shipped = explainers_for(load_rules())                                   # 5.6 is mild hyperkalaemia
+    assert build(f, al, explainers=shipped).iloc[0]["status"] == STATUS_OPEN
+    site = explainers_for(load_rules({"hyperkalemia": {"k_mild": 5.8}}))     # a site flags from 5.8
+    assert build(f, al, explainers=site).iloc[0]["status"] == STATUS_EXPLAINED
+
+
 def test_normal_repeat_does_not_explain_a_potassium_that_was_not_haemolysed():
     clean = {**HAEMOLYSED, "k_hemolyzed": False}
     f = findings(finding("e1", "p1", at="2026-03-01 10:00", values=clean))
