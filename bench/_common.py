@@ -22,6 +22,15 @@ def ensure_lake(path: Path, patients: int, days: int, end: str = "2026-11-30") -
     return str(path / "site.toml")
 
 
+def even_patients(patients: int, days: int, long_days: int) -> int:
+    """Patients for a lake of `long_days` whose nights hold as many ECGs as a lake of `patients`
+    over `days`: only the history grows (the generator gives a longer lake more ECGs per patient)."""
+    sys.path.insert(0, str(ROOT))
+    from pipeline.samplegen import ecgs_per_patient
+
+    return round(patients * long_days / days * ecgs_per_patient(days) / ecgs_per_patient(long_days))
+
+
 def run_json(code: str, *args) -> dict:
     """Run `code` in a fresh interpreter (start-up counts); its last stdout line is JSON."""
     t = time.perf_counter()

@@ -5,7 +5,8 @@
 Generates (once, cached by folder) a lake with the sample-lake generator, then prints seconds
 and peak memory for:
   1. one night, load + align, in a fresh process (start-up and imports included);
-  2. the same night on a lake with three times the history (flatness beyond the look-backs);
+  2. the same night on a lake with three times the history and the same nightly volume
+     (flatness beyond the look-backs);
   3. a 30-day backfill: pandas path vs an equivalent DuckDB SQL (ASOF JOINs), alternating, median of 3.
 A benchmark, not a test: figures go to docs/performance.md by hand.
 """
@@ -15,7 +16,7 @@ import argparse
 import statistics
 from pathlib import Path
 
-from _common import ensure_lake, run_json
+from _common import ensure_lake, even_patients, run_json
 
 NIGHT_CODE = """
 import json, resource, sys, time
@@ -74,7 +75,7 @@ def main() -> None:
     ap.add_argument("--days", type=int, default=365)
     ap.add_argument("--end", default="2026-11-30")
     ap.add_argument("--lake", default="/tmp/cs-bench-1y")
-    ap.add_argument("--long-lake", default="/tmp/cs-bench-3y")
+    ap.add_argument("--long-lake", default="/tmp/cs-bench-3y-even")
     ap.add_argument("--skip-long", action="store_true")
     args = ap.parse_args()
     lake = Path(args.lake)
@@ -91,7 +92,7 @@ def main() -> None:
 
     if not args.skip_long:
         long_lake = Path(args.long_lake)
-        ensure_lake(long_lake, args.patients * 3, args.days * 3, args.end)
+        ensure_lake(long_lake, even_patients(args.patients, args.days, args.days * 3), args.days * 3, args.end)
         longs = [run_json(NIGHT_CODE, long_lake, "/tmp/cs-bench-out-long", *night, config) for _ in range(3)]
         print(f"same night on a lake with {args.days * 3} days of history: median wall "
               f"{statistics.median(n['wall_s'] for n in longs):.2f} s (load {longs[-1]['load_s']:.2f}, "

@@ -1,12 +1,13 @@
 """End-to-end benchmark: the nightly job (load, quality gate, align, screen, rank and write).
 
-    .venv/bin/python bench/nightly.py [--quick] [--skip-network]
+    .venv/bin/python bench/nightly.py [--skip-long] [--skip-network]
 
 Generates lakes with the sample-lake generator under /tmp (cached by folder), then prints, for
 each measurement, wall seconds (fresh process: start-up and imports included), seconds per stage
 and peak memory (max RSS):
   1. one night on a 1-year lake (~200,000 ECGs, ~3 million lab rows);
-  2. the same night on a lake with 3 years of history (flatness beyond the look-back windows);
+  2. the same night on a lake with 3 years of history and the same nightly volume (flatness
+     beyond the look-back windows);
   3. a 30-day backfill, and the same against the DuckDB SQL a skilled analyst would write for the
      potassium alignment and the hyperkalaemia rule, alternating, median of 3;
   4. a 1-year backfill of a hospital network (~800,000 ECGs, ~12 million lab rows), with DuckDB.
@@ -19,7 +20,7 @@ import shutil
 import statistics
 from pathlib import Path
 
-from _common import ensure_lake, run_json
+from _common import ensure_lake, even_patients, run_json
 
 RUN_CODE = """
 import json, resource, sys, time
@@ -88,7 +89,8 @@ def ours(lake, config, start, end, quality=True, fresh=True) -> dict:
 def show(label: str, r: dict) -> None:
     stages = ", ".join(f"{k} {v:.2f}" for k, v in r.get("seconds", {}).items())
     extra = f"; stages: {stages}" if stages else ""
-    print(f"{label}: wall {r['wall_s']:.2f} s, peak {r['peak_mb']:.0f} MB, findings {r['findings']}{extra}")
+    ecgs = f"ECGs {r['ecgs']}, " if "ecgs" in r else ""
+    print(f"{label}: wall {r['wall_s']:.2f} s, peak {r['peak_mb']:.0f} MB, {ecgs}findings {r['findings']}{extra}")
 
 
 def race(lake, config, start, end, label) -> None:
@@ -121,8 +123,8 @@ def main() -> None:
     show("one night, 1-year lake, without quality gate (median of 3)",
          {**runs[-1], "wall_s": statistics.median(r["wall_s"] for r in runs)})
     if not args.skip_long:
-        long_lake = "/tmp/cs-bench-3y"
-        long_config = ensure_lake(Path(long_lake), 180000, 365 * 3, end)
+        long_lake = "/tmp/cs-bench-3y-even"
+        long_config = ensure_lake(Path(long_lake), even_patients(60000, 365, 365 * 3), 365 * 3, end)
         runs = [ours(long_lake, long_config, *night) for _ in range(3)]
         show("one night, 3-year lake, with quality gate (median of 3)",
              {**runs[-1], "wall_s": statistics.median(r["wall_s"] for r in runs)})

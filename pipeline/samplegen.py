@@ -196,6 +196,17 @@ class Variant:
     prior_detail: str | None = None  # when set, the prior ECG is a planted case too
 
 
+def ecgs_per_patient(days: int) -> float:
+    """Mean ECGs of a (not planted) patient in a lake of `days`: 1 + Poisson, about 2 in 30 days
+    and 3.5 in a year (benchmark scale). A longer lake holds more ECGs per patient, so the
+    benchmarks scale patients by this to keep one night's volume when they add history."""
+    return 1.0 + _follow_on_rate(days)
+
+
+def _follow_on_rate(days: int) -> float:
+    return 0.9 + 1.65 * days / 365.0
+
+
 class _Builder:
     """Column arrays of one invented lake while it is being built (rows addressed by position)."""
 
@@ -246,9 +257,7 @@ class _Builder:
     def make_ecg_rows(self, planted_pidx, planted_variant, variants, forced_last):
         rng, days = self.rng, self.days
         normal = np.setdiff1d(np.arange(self.n_patients), planted_pidx)
-        # ECGs per patient: 1 + Poisson; about 2 in 30 days, 3.5 in a year (benchmark scale).
-        lam = 0.9 + 1.65 * days / 365.0
-        n_per = 1 + rng.poisson(lam, normal.size)
+        n_per = 1 + rng.poisson(_follow_on_rate(days), normal.size)
         pidx = np.repeat(normal, n_per)
         t = self.clock(rng.integers(0, days, pidx.size), pidx.size)
         order = np.lexsort((t, pidx))
