@@ -40,6 +40,7 @@ import duckdb
 lake, start, end = sys.argv[1:4]
 con = duckdb.connect()
 con.execute("SET TimeZone='UTC'")
+con.execute("SET enable_progress_bar=false")
 sql = f'''
 WITH e AS (SELECT ecg_id, patient_id, acquired_at FROM read_parquet('{lake}/ecg/*/*.parquet', hive_partitioning=false)
            WHERE acquired_at >= TIMESTAMPTZ '{start}' AND acquired_at < TIMESTAMPTZ '{end}'),

@@ -20,3 +20,14 @@ def isin(values: pd.Series, allowed) -> np.ndarray:
     if keys.type != arr.type:
         keys = keys.cast(arr.type)
     return pc.is_in(arr, value_set=keys).fill_null(False).to_numpy(zero_copy_only=False)
+
+
+def positions(values: pd.Series, keys: pd.Series | np.ndarray) -> np.ndarray:
+    """For each entry of `values`, its position in `keys` (unique text), -1 when absent or
+    missing: `pd.Index(keys).get_indexer(values)` through pyarrow's hash table, for the same
+    reason as isin (pandas 3 converts Arrow strings to Python objects first)."""
+    arr = pa.array(pd.Series(values).astype("str"), from_pandas=True)
+    ref = pa.array(pd.Series(keys).astype("str"), from_pandas=True)
+    if ref.type != arr.type:
+        ref = ref.cast(arr.type)
+    return pc.index_in(arr, value_set=ref).fill_null(-1).to_numpy(zero_copy_only=False).astype(np.int64)

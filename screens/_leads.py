@@ -13,7 +13,7 @@ from typing import Sequence
 import numpy as np
 import pandas as pd
 
-from pipeline.frames import isin
+from pipeline.frames import positions
 
 LIMB = ["I", "II", "III", "aVR", "aVL", "aVF"]
 PRECORDIAL = ["V1", "V2", "V3", "V4", "V5", "V6"]
@@ -47,8 +47,8 @@ def wide(leads: pd.DataFrame, ecg_ids: pd.Series | np.ndarray, columns: Sequence
     n, m = len(ids), len(uniq)
     grids = {c: np.full((m + 1, len(ALL_LEADS)), np.nan) for c in columns}   # row m stays NaN
     if leads is not None and len(leads) and m:
-        row = pd.Index(uniq).get_indexer(leads["ecg_id"].astype("str"))
-        col = pd.Index(ALL_LEADS).get_indexer(leads["lead"].astype("str"))
+        row = positions(leads["ecg_id"], np.asarray(uniq, dtype=object))
+        col = positions(leads["lead"], np.asarray(ALL_LEADS, dtype=object))
         hit = np.flatnonzero((row >= 0) & (col >= 0))
         _, first = np.unique(row[hit] * len(ALL_LEADS) + col[hit], return_index=True)
         hit = hit[first]                              # first row of each (ecg_id, lead)
