@@ -17,6 +17,17 @@ def test_help_imports_no_heavy_library():
     assert out.strip() == "[]"
 
 
+def test_nightly_run_without_gate_imports_no_statistics_or_scheduler(tmp_path):
+    """The nightly path imports what it uses: scipy.stats is for the yield report only, Airflow and
+    Great Expectations for the DAG and the gate."""
+    lake = write_lake(tmp_path / "lake")
+    code = ("import sys; from pipeline.run import run_interval; "
+            f"run_interval({str(lake)!r}, {str(tmp_path / 'out')!r}, '2026-11-29', '2026-11-30', quality=False); "
+            "print(sorted(m for m in ('scipy.stats', 'airflow', 'great_expectations', 'duckdb') if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    assert out.strip().splitlines()[-1] == "[]"
+
+
 def test_run_succeeds_and_prints_counts_not_identifiers(tmp_path, capsys):
     lake = write_lake(tmp_path / "lake", ecg=[ecg_row("ECG-SECRET-1", "PAT-SECRET-1")],
                       labs=[lab_row("R1", "PAT-SECRET-1", value=4.1)], patients=[patient_row("PAT-SECRET-1")])
