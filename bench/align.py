@@ -91,6 +91,10 @@ def main() -> None:
           f"(imports {n0['import_s']:.2f}, load {n0['load_s']:.2f}, align {n0['align_s']:.2f}); "
           f"{n0['ecgs']} ECGs, {n0['lab_rows']} lab rows, {n0['history_rows']} prior ECGs; peak {n0['peak_mb']:.0f} MB")
 
+    duck = [run_json(DUCKDB_CODE, lake, *night) for _ in range(3)]
+    print(f"one night, DuckDB SQL over the Parquet files: median wall "
+          f"{statistics.median(n['wall_s'] for n in duck):.2f} s; {duck[-1]['ecgs']} ECGs")
+
     if not args.skip_long:
         long_lake = Path(args.long_lake)
         ensure_lake(long_lake, even_patients(args.patients, args.days, args.days * 3), args.days * 3, args.end)
@@ -98,6 +102,9 @@ def main() -> None:
         print(f"same night on a lake with {args.days * 3} days of history: median wall "
               f"{statistics.median(n['wall_s'] for n in longs):.2f} s (load {longs[-1]['load_s']:.2f}, "
               f"align {longs[-1]['align_s']:.2f}); {longs[-1]['ecgs']} ECGs")
+        duck = [run_json(DUCKDB_CODE, long_lake, *night) for _ in range(3)]
+        print(f"same night, DuckDB SQL (globs every partition): median wall "
+              f"{statistics.median(n['wall_s'] for n in duck):.2f} s; {duck[-1]['ecgs']} ECGs")
 
     backfill = ("2026-10-31T00:00:00Z", "2026-11-30T00:00:00Z")
     ours, theirs = [], []
