@@ -490,7 +490,11 @@ def _spreadsheet_safe(s: pd.Series) -> pd.Series:
 
 def export_items(engine: Engine, fmt: str = "csv", dest=None) -> int:
     """Write all stored items in rank order to `dest` (a path, or a text stream such as
-    sys.stdout) as CSV for spreadsheets. Returns the number of rows."""
+    sys.stdout) as CSV for spreadsheets, the screening caution in a last column `caution` of
+    every row (a spreadsheet loses file-level notes; a row copied elsewhere keeps it). Returns
+    the number of rows."""
+    from pipeline import CAUTION
+
     if fmt != "csv":
         raise ValueError(f"export: unknown format {fmt!r} (known: csv)")
     df = read_items(engine)
@@ -501,5 +505,6 @@ def export_items(engine: Engine, fmt: str = "csv", dest=None) -> int:
         df[c] = df[c].dt.strftime("%Y-%m-%dT%H:%M:%SZ")
     if dest is None:
         raise ValueError("export: no destination given")
+    df["caution"] = CAUTION
     df.to_csv(dest, index=False, lineterminator="\n")
     return len(df)

@@ -312,6 +312,8 @@ def test_export_csv_in_rank_order_with_formula_text_defused(engine):
     assert back["rank"].tolist() == ["1", "2"] and back["ecg_id"].tolist() == ["e1", "e2"]
     assert back.loc[1, "summary"].startswith("'=")
     assert "item_id" in back.columns and "first_flagged_at" in back.columns
+    from pipeline import CAUTION
+    assert back.columns[-1] == "caution" and back["caution"].eq(CAUTION).all()
 
 
 def test_export_refuses_unknown_format(sqlite_engine):
