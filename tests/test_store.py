@@ -6,6 +6,7 @@ import io
 import json
 import os
 
+import numpy as np
 import pandas as pd
 import pytest
 from sqlalchemy import text
@@ -263,6 +264,23 @@ def test_csv_without_a_required_column_is_a_whole_file_error(sqlite_engine, tmp_
 def test_wilson_interval_matches_newcombe_worked_examples(k, n, low, high):
     lo, hi = wilson_interval(k, n)
     assert (round(float(lo), 4), round(float(hi), 4)) == (low, high)
+
+
+def test_wilson_interval_matches_statsmodels_over_a_grid():
+    # Reference library: statsmodels.stats.proportion.proportion_confint(method="wilson").
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DeprecationWarning)   # statsmodels' own imports
+        from statsmodels.stats.proportion import proportion_confint
+    n = np.repeat(np.arange(1, 61), 61)
+    k = np.tile(np.arange(0, 61), 60)
+    keep = k <= n
+    k, n = k[keep], n[keep]
+    lo, hi = wilson_interval(k, n)
+    ref_lo, ref_hi = proportion_confint(k, n, alpha=0.05, method="wilson")
+    np.testing.assert_allclose(lo, ref_lo, atol=1e-12)
+    np.testing.assert_allclose(hi, ref_hi, atol=1e-12)
 
 
 def test_wilson_interval_of_no_reviews_is_missing():
