@@ -290,3 +290,36 @@ def test_an_undefined_connection_is_a_configuration_error_not_retried(airflow_db
     m = load_dag_module()
     with pytest.raises(AirflowFailException, match="connection 'no_such_connection' is not defined"):
         m.worklist_db_url({"db": "", "db_conn_id": "no_such_connection"})
+
+
+def test_bad_data_fails_without_retry_and_a_system_io_error_is_left_to_retry(tmp_path):
+    """call_stage turns the pipeline's bad-data errors into AirflowFailException (no retries) and
+    lets an OSError with errno through, which Airflow retries with back-off."""
+    import errno
+
+    from airflow.sdk.exceptions import AirflowFailException
+
+    from pipeline.load import LakeError
+
+    m = load_dag_module()
+    broken = tmp_path / "lake" / "ecg" / "date=2026-11-29"
+    broken.mkdir(parents=True)
+    (broken / "part-0.parquet").write_bytes(b"not parquet")
+
+    def damaged():
+        from pipeline import contract as c
+        from pipeline.config import settings_from_dict
+        from pipeline.load import read_table
+        return read_table(tmp_path / "lake", c.ECG, settings_from_dict({}), scope="night",
+                          window=(pd.Timestamp("2026-11-29T00:00Z"), pd.Timestamp("2026-11-30T00:00Z")))
+
+    with pytest.raises(AirflowFailException, match="LakeError: cannot read .*part-0.parquet"):
+        m.call_stage(damaged)
+    with pytest.raises(LakeError):      # the same error outside Airflow: what call_stage converted
+        damaged()
+
+    def mount_away():
+        raise OSError(errno.EIO, "Input/output error")
+    with pytest.raises(OSError) as caught:
+        m.call_stage(mount_away)
+    assert not isinstance(caught.value, AirflowFailException) and caught.value.errno == errno.EIO
