@@ -74,11 +74,6 @@ LOCATION_WEIGHTS = (
 )
 LOCATION_UNKNOWN = 0.5
 
-# Explained away: a repeat potassium below the mild hyperkalaemia band [UKKA-2020] from a specimen
-# known not to be haemolysed. TODO: follow a site override of the hyperkalemia screen's threshold.
-K_BACK_TO_NORMAL_BELOW_MMOL_L = 5.5
-
-
 # ---------------------------------------------------------------------------------------------
 # Small helpers
 # ---------------------------------------------------------------------------------------------
@@ -260,11 +255,12 @@ def apply_reopen_rule(items: pd.DataFrame, stored: pd.DataFrame | None) -> pd.Da
 # table and returns a reason (str) per item, NaN where the item is not explained away.
 # ---------------------------------------------------------------------------------------------
 def explain_hyperkalemia(items: pd.DataFrame, aligned: pd.DataFrame,
-                         k_normal_below: float = K_BACK_TO_NORMAL_BELOW_MMOL_L) -> pd.Series:
+                         k_normal_below: float | None = None) -> pd.Series:
     """An item decided by a haemolysed potassium is explained away when a later potassium of the
     same patient, from a specimen known not to be haemolysed (NA does not count), is below
-    `k_normal_below` (the screen's mild band, 5.5 mmol/L [UKKA-2020], or the site's override;
-    see explainers_for): haemolysis raises measured potassium (pseudohyperkalaemia).
+    `k_normal_below`: the hyperkalemia screen's mild band `k_mild` (5.5 mmol/L [UKKA-2020] in
+    screens/rules.toml when None; a site's override through explainers_for). Haemolysis raises
+    measured potassium (pseudohyperkalaemia).
 
     The deciding potassium (k_mmol_l, k_hemolyzed, k_offset_min, k_result_id) comes from the
     item's evidence values, else from the aligned row of its ECG; the later ones from the aligned
@@ -293,6 +289,9 @@ def explain_hyperkalemia(items: pd.DataFrame, aligned: pd.DataFrame,
     if dec.empty:
         return reasons
 
+    if k_normal_below is None:
+        from screens.criteria import load_rules
+        k_normal_below = load_rules()["hyperkalemia"]["k_mild"].value
     later = aligned[aligned["k_mmol_l"].notna()].copy()
     later["later_at"] = _utc(later["acquired_at"]) + pd.to_timedelta(later["k_offset_min"], unit="min")
     not_haem = later["k_hemolyzed"].astype("boolean").eq(False).fillna(False)

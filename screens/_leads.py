@@ -44,7 +44,7 @@ def wide(leads: pd.DataFrame, ecg_ids: pd.Series | np.ndarray, columns: Sequence
     names = [*ALL_LEADS, "-aVR"]
     ids = pd.Series(np.asarray(ecg_ids, dtype=object)).astype("str")
     uniq_codes, uniq = pd.factorize(ids)              # -1 for a missing id
-    n, m = len(ids), len(uniq)
+    m = len(uniq)
     grids = {c: np.full((m + 1, len(ALL_LEADS)), np.nan) for c in columns}   # row m stays NaN
     if leads is not None and len(leads) and m:
         row = positions(leads["ecg_id"], np.asarray(uniq, dtype=object))
