@@ -88,7 +88,8 @@ def main(argv: list[str] | None = None) -> int:
 
 
 def _is_bad_input(exc: Exception) -> bool:
-    names = {"ConfigError", "ContractError", "LakeError", "RunError", "QualityGateError", "ReviewError"}
+    names = {"ConfigError", "ContractError", "LakeError", "RunError", "QualityGateError", "ReviewError",
+             "StoreSchemaError"}
     return any(cls.__name__ in names for cls in type(exc).__mro__)
 
 

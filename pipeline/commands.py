@@ -17,7 +17,7 @@ from pathlib import Path
 from pipeline import CAUTION
 # Kept in step with pipeline.store.OUTCOMES (tests/test_commands.py checks it); repeated here
 # because this module may not import the store at start-up.
-OUTCOME_HELP = "confirmed, not_confirmed, already_known, data_problem"
+OUTCOME_HELP = "finding_real, finding_not_real, already_known, data_problem"
 SHOW_COLUMNS = ["rank", "tier", "screen", "status", "patient_id", "ecg_at", "score", "summary"]
 SUMMARY_WIDTH = 70
 
@@ -34,7 +34,10 @@ def register(subparsers) -> None:
     p = subparsers.add_parser("review", help="record a review outcome for an item, or import a CSV of them",
                               description="Record a review outcome (closes the item) or import outcomes "
                                           "exported by staff tools (CSV columns: item_id, reviewed_at, "
-                                          "reviewer_role, outcome, note).")
+                                          "reviewer_role, outcome, note). Outcomes: finding_real (the "
+                                          "flagged abnormality is there and was news), finding_not_real "
+                                          "(it is not there), already_known (there, already known), "
+                                          "data_problem (flagged because of wrong or mismatched data).")
     p.add_argument("item_id", nargs="?", help="the worklist item reviewed")
     p.add_argument("--outcome", help=f"one of: {OUTCOME_HELP}")
     p.add_argument("--role", help="reviewer role (e.g. cardiology registrar), not a name")
@@ -45,9 +48,9 @@ def register(subparsers) -> None:
     _add_store_options(p)
     p.set_defaults(handler=handle_review, func=handle_review)
 
-    p = subparsers.add_parser("yield", help="per screen and tier: items, reviewed, confirmed, PPV (95 %% Wilson)",
+    p = subparsers.add_parser("yield", help="per screen and tier: items, reviewed, finding_real, PPV (95 %% Wilson)",
                               description="Review yield per screen and tier, for tuning thresholds. "
-                                          "PPV = (confirmed + already_known) / reviewed.")
+                                          "PPV = (finding_real + already_known) / reviewed.")
     _add_store_options(p)
     p.add_argument("--since", metavar="DATE", help="only items first flagged at or after DATE (UTC)")
     p.set_defaults(handler=handle_yield, func=handle_yield)
@@ -135,16 +138,16 @@ def handle_yield(args) -> int:
     if url is None:
         return 2
     table = yield_table(open_store(url), since=args.since)
-    header = ["screen", "tier", "items", "reviewed", "confirmed", "already_known", "ppv", "ppv_95ci",
+    header = ["screen", "tier", "items", "reviewed", "finding_real", "already_known", "ppv", "ppv_95ci",
               "median_h_to_review"]
     def num(x, fmt):
         return "-" if x != x else format(x, fmt)   # NaN shows as "-"
-    rows = [[r.screen, str(r.tier), str(r.items), str(r.reviewed), str(r.confirmed), str(r.already_known),
+    rows = [[r.screen, str(r.tier), str(r.items), str(r.reviewed), str(r.finding_real), str(r.already_known),
              num(r.ppv, ".2f"),
              "-" if r.ppv_low != r.ppv_low else f"{r.ppv_low:.2f}-{r.ppv_high:.2f}",
              num(r.median_hours_to_review, ".1f")] for r in table.itertuples()]
     print(format_table(rows, header, right=set(header) - {"screen", "ppv_95ci"}))
-    print("ppv = (confirmed + already_known) / reviewed, by each item's latest review; "
+    print("ppv = (finding_real + already_known) / reviewed, by each item's latest review; "
           "95 % Wilson score interval.")
     return 0
 

@@ -1,8 +1,13 @@
 """The worklist in SQL (SQLAlchemy 2): items, review outcomes, yield and export.
 
 Tables
-    worklist_item  one row per item (pipeline.worklist.ITEM_COLUMNS), primary key item_id
-    review         one row per recorded review outcome; the latest review of an item closes it
+    worklist_item       one row per item (pipeline.worklist.ITEM_COLUMNS), primary key item_id
+    review              one row per recorded review outcome; the latest review of an item closes it
+    cardiosieve_schema  one row: the schema version (SCHEMA_VERSION), written by open_store
+
+Schema versions (open_store upgrades an older store in one transaction, see _upgrade)
+    1  before versioning: outcomes confirmed / not_confirmed (no cardiosieve_schema table)
+    2  outcomes renamed finding_real / finding_not_real (staff read "confirmed" as a signed report)
 
 SQLite by default (OUT/worklist.sqlite, see sqlite_url), PostgreSQL through a
 `postgresql+psycopg://...` URL. Timestamps are stored in UTC (SQLite drops offsets, so UTC is
@@ -20,29 +25,36 @@ from __future__ import annotations
 
 import datetime as dt
 import re
+from contextlib import contextmanager
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 from sqlalchemy import (CheckConstraint, Column, DateTime, Float, ForeignKey, Index, Integer, MetaData,
                         String, Table, Text, TypeDecorator, UniqueConstraint, bindparam, case,
-                        create_engine, func, insert, select, update)
+                        create_engine, delete, func, insert, inspect, select, update)
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.engine import Connection, Engine
+from sqlalchemy.schema import AddConstraint, CreateTable, DropConstraint
 
 from pipeline.worklist import (ACTIVE_STATUSES, ITEM_COLUMNS, STATUS_CLOSED, STATUS_EXPLAINED,
                                STATUS_REOPENED, STATUSES, TIMESTAMP_COLUMNS, apply_reopen_rule,
                                empty_items, normalise_items)
 
-# Review outcomes: the one place they are named.
-OUTCOME_CONFIRMED = "confirmed"            # the flagged abnormality is real and was news
-OUTCOME_NOT_CONFIRMED = "not_confirmed"    # the reviewer does not find it
-OUTCOME_ALREADY_KNOWN = "already_known"    # real, but the team already knew
-OUTCOME_DATA_PROBLEM = "data_problem"      # flagged because of wrong or mismatched data
-OUTCOMES = (OUTCOME_CONFIRMED, OUTCOME_NOT_CONFIRMED, OUTCOME_ALREADY_KNOWN, OUTCOME_DATA_PROBLEM)
+# Review outcomes: the one place they are named. The review column is String(16):
+# "finding_not_real" is exactly 16 characters, so a longer name needs a wider column.
+OUTCOME_FINDING_REAL = "finding_real"          # the flagged abnormality is real and was news
+OUTCOME_FINDING_NOT_REAL = "finding_not_real"  # the reviewer does not find it
+OUTCOME_ALREADY_KNOWN = "already_known"        # real, but the team already knew
+OUTCOME_DATA_PROBLEM = "data_problem"          # flagged because of wrong or mismatched data
+OUTCOMES = (OUTCOME_FINDING_REAL, OUTCOME_FINDING_NOT_REAL, OUTCOME_ALREADY_KNOWN, OUTCOME_DATA_PROBLEM)
+# Names used before schema version 2 (staff read "confirmed" as a signed report). Still accepted
+# as input (CLI and CSV) and rewritten by the migration; never stored, never shown in help.
+LEGACY_OUTCOMES = {"confirmed": OUTCOME_FINDING_REAL, "not_confirmed": OUTCOME_FINDING_NOT_REAL}
 # Positive predictive value counts a flag as a true positive when the abnormality was real,
-# whether or not it was news: confirmed and already_known (local choice, docs/prioritisation.md).
-TRUE_POSITIVE_OUTCOMES = (OUTCOME_CONFIRMED, OUTCOME_ALREADY_KNOWN)
+# whether or not it was news: finding_real and already_known (local choice, docs/prioritisation.md).
+TRUE_POSITIVE_OUTCOMES = (OUTCOME_FINDING_REAL, OUTCOME_ALREADY_KNOWN)
+REVIEWED_REASON = "reviewed: {}"   # status_reason of an item closed by a review, with its outcome
 
 # Reasons a review row from a CSV is rejected (reported per line, never silently dropped).
 REJECT_MISSING_VALUE = "missing_value"
@@ -133,6 +145,19 @@ review = Table(
     Index("ix_review_item", "item_id"),
 )
 
+SCHEMA_VERSION = 2   # bump with a new entry in MIGRATIONS (and a test from the old schema)
+cardiosieve_schema = Table(
+    "cardiosieve_schema", metadata,
+    Column("id", Integer, primary_key=True, autoincrement=False),
+    Column("version", Integer, nullable=False),
+    CheckConstraint("id = 1", name="ck_cardiosieve_schema_one_row"),
+)
+
+
+class StoreSchemaError(Exception):
+    """The store's schema cannot be used or upgraded by this code (the message names tables
+    and versions, never row values)."""
+
 
 # ---------------------------------------------------------------------------------------------
 # Engine and reading
@@ -143,12 +168,148 @@ def sqlite_url(out) -> str:
 
 
 def open_store(url: str) -> Engine:
-    """Engine for `url`, with the tables created if absent (the SQLite folder too)."""
+    """Engine for `url`, with the tables created if absent (the SQLite folder too) and an older
+    store upgraded to SCHEMA_VERSION (see _upgrade). A store already at SCHEMA_VERSION is only
+    read: one look at cardiosieve_schema."""
     if url.startswith("sqlite:///") and url != "sqlite:///:memory:":
         Path(url[len("sqlite:///"):]).parent.mkdir(parents=True, exist_ok=True)
     engine = create_engine(url)
-    metadata.create_all(engine)
+    try:
+        with engine.connect() as conn:
+            current = _stored_version(conn) == SCHEMA_VERSION
+        if not current:
+            with _schema_transaction(engine) as conn:
+                _upgrade(conn)
+    except BaseException:
+        engine.dispose()   # the caller never gets the engine: close its connections here
+        raise
     return engine
+
+
+# ---------------------------------------------------------------------------------------------
+# Schema version and migrations
+# ---------------------------------------------------------------------------------------------
+# Key of the PostgreSQL advisory lock held while the schema is checked and upgraded, so that two
+# processes opening an old store at once migrate it once (any fixed 64-bit number: "cardsiev").
+_PG_SCHEMA_LOCK = 0x63617264_73696576
+
+
+def _stored_version(conn: Connection) -> int | None:
+    """The store's schema version: the cardiosieve_schema row; 1 for a store made before
+    versioning (it has our tables but no version row); None for an empty database."""
+    have = inspect(conn)
+    if have.has_table(cardiosieve_schema.name):
+        found = conn.execute(select(cardiosieve_schema.c.version)).scalar()
+        if found is not None:
+            return int(found)
+    if have.has_table(review.name) or have.has_table(worklist_item.name):
+        return 1
+    return None
+
+
+@contextmanager
+def _schema_transaction(engine: Engine):
+    """One transaction for a schema change, DDL included, holding the store's write lock from
+    before the version is read.
+
+    SQLite: the sqlite3 module begins a transaction only before INSERT/UPDATE/DELETE, so CREATE,
+    DROP and ALTER would each commit on their own. The connection is put in driver autocommit and
+    the transaction is driven by hand; BEGIN IMMEDIATE takes the write lock at once (SQLite DDL
+    is transactional). PostgreSQL: DDL is transactional; an advisory lock, released at commit,
+    makes a second process wait and then find the store current."""
+    if engine.dialect.name == "sqlite":
+        with engine.connect().execution_options(isolation_level="AUTOCOMMIT") as conn:
+            conn.exec_driver_sql("BEGIN IMMEDIATE")
+            try:
+                yield conn
+            except BaseException:
+                if conn.connection.dbapi_connection.in_transaction:
+                    conn.exec_driver_sql("ROLLBACK")
+                raise
+            conn.exec_driver_sql("COMMIT")
+    else:
+        with engine.begin() as conn:
+            if engine.dialect.name == "postgresql":
+                conn.execute(select(func.pg_advisory_xact_lock(_PG_SCHEMA_LOCK)))
+            yield conn
+
+
+def _upgrade(conn: Connection) -> None:
+    """Bring the store to SCHEMA_VERSION inside the caller's transaction: create an empty store,
+    or run each migration from the stored version on, then create any missing table and record
+    the version. Re-reads the version under the lock, so a store another process has just
+    upgraded is left alone."""
+    found = _stored_version(conn)
+    if found == SCHEMA_VERSION:
+        return
+    if found is not None and found > SCHEMA_VERSION:
+        raise StoreSchemaError(f"store schema version {found} is newer than this cardiosieve "
+                               f"(version {SCHEMA_VERSION}): upgrade cardiosieve")
+    if found is not None:                  # an empty database needs only create_all
+        for version in range(found, SCHEMA_VERSION):
+            MIGRATIONS[version](conn)
+    metadata.create_all(conn)
+    conn.execute(delete(cardiosieve_schema))
+    conn.execute(insert(cardiosieve_schema).values(id=1, version=SCHEMA_VERSION))
+
+
+def _row_counts(conn: Connection, tables) -> dict:
+    return {t.name: conn.execute(select(func.count()).select_from(t)).scalar() for t in tables}
+
+
+def _migrate_1_to_2(conn: Connection) -> None:
+    """Outcomes confirmed -> finding_real, not_confirmed -> finding_not_real (LEGACY_OUTCOMES):
+    stored reviews, the ck_review_outcome constraint (old set -> OUTCOMES) and the
+    "reviewed: <outcome>" reason of closed items. Row counts must match before and after."""
+    have = inspect(conn)
+    tables = [t for t in (worklist_item, review) if have.has_table(t.name)]
+    before = _row_counts(conn, tables)
+    if review in tables:
+        renamed = case(LEGACY_OUTCOMES, value=review.c.outcome, else_=review.c.outcome)
+        if conn.dialect.name == "sqlite":
+            _rebuild_sqlite_review(conn, renamed)
+        else:
+            ck = next(c for c in review.constraints if c.name == "ck_review_outcome")
+            conn.execute(DropConstraint(ck, if_exists=True))
+            conn.execute(update(review).where(review.c.outcome.in_(list(LEGACY_OUTCOMES)))
+                         .values(outcome=renamed))
+            conn.execute(AddConstraint(ck))
+    if worklist_item in tables:
+        t = worklist_item
+        reasons = {REVIEWED_REASON.format(old): REVIEWED_REASON.format(new)
+                   for old, new in LEGACY_OUTCOMES.items()}
+        conn.execute(update(t).where(t.c.status_reason.in_(list(reasons)))
+                     .values(status_reason=case(reasons, value=t.c.status_reason)))
+    after = _row_counts(conn, tables)
+    if after != before:
+        raise StoreSchemaError(f"schema migration 1 -> 2 changed row counts {before} -> {after}: rolled back")
+    if review in tables:
+        left = conn.execute(select(func.count()).select_from(review)
+                            .where(review.c.outcome.in_(list(LEGACY_OUTCOMES)))).scalar()
+        if left:
+            raise StoreSchemaError(f"schema migration 1 -> 2 left {left} review row(s) with old outcomes: "
+                                   "rolled back")
+
+
+def _rebuild_sqlite_review(conn: Connection, outcome_expr) -> None:
+    """SQLite cannot alter a CHECK constraint: rebuild `review` the documented way (sqlite.org,
+    ALTER TABLE, "other kinds of table schema changes"): create the new table under another
+    name, copy every row (review_id kept, outcomes renamed), drop the old table, rename, recreate
+    the indexes. Nothing refers to `review`, so the foreign key setting does not matter."""
+    scratch = MetaData()
+    worklist_item.to_metadata(scratch)   # the copy's foreign key needs its target table
+    staged = review.to_metadata(scratch, name="review_migrating")
+    conn.execute(CreateTable(staged))
+    names = [c.name for c in review.columns]
+    picked = [outcome_expr.label("outcome") if n == "outcome" else review.c[n] for n in names]
+    conn.execute(insert(staged).from_select(names, select(*picked)))
+    conn.exec_driver_sql('DROP TABLE "review"')
+    conn.exec_driver_sql('ALTER TABLE "review_migrating" RENAME TO "review"')
+    for index in review.indexes:
+        index.create(conn)
+
+
+MIGRATIONS = {1: _migrate_1_to_2}   # version -> function taking the store to version + 1
 
 
 def _records(df: pd.DataFrame) -> list[dict]:
@@ -260,8 +421,10 @@ def upsert_items(engine: Engine, items: pd.DataFrame) -> dict:
 # Reviews
 # ---------------------------------------------------------------------------------------------
 def normalise_outcome(text) -> str:
-    """'Not confirmed', 'not-confirmed' and 'NOT_CONFIRMED' all mean not_confirmed."""
-    return re.sub(r"[\s\-]+", "_", str(text).strip().lower())
+    """'Finding not real', 'finding-not-real' and 'FINDING_NOT_REAL' all mean finding_not_real;
+    the old words ('Not confirmed', 'confirmed', ...) map to their new names (LEGACY_OUTCOMES)."""
+    word = re.sub(r"[\s\-]+", "_", str(text).strip().lower())
+    return LEGACY_OUTCOMES.get(word, word)
 
 
 def _apply_reviews(conn: Connection, new: pd.DataFrame, recorded_via: str) -> int:
@@ -283,7 +446,7 @@ def _apply_reviews(conn: Connection, new: pd.DataFrame, recorded_via: str) -> in
     if len(m):
         conn.execute(update(t).where(t.c.item_id == bindparam("b_item_id")).values(
             status=STATUS_CLOSED, status_reason=bindparam("b_reason"), last_updated_at=bindparam("b_at")),
-            [{"b_item_id": i, "b_reason": f"reviewed: {o}", "b_at": a}
+            [{"b_item_id": i, "b_reason": REVIEWED_REASON.format(o), "b_at": a}
              for i, o, a in zip(m["item_id"], m["outcome"], m["reviewed_at"])])
         _rerank(conn)
     return len(rows)
@@ -434,13 +597,14 @@ def wilson_interval(k, n, confidence: float = WILSON_CONFIDENCE):
     return np.where(bad, np.nan, low), np.where(bad, np.nan, high)
 
 
-YIELD_COLUMNS = ["screen", "tier", "items", "reviewed", "confirmed", "already_known", "not_confirmed",
-                 "data_problem", "ppv", "ppv_low", "ppv_high", "median_hours_to_review"]
+YIELD_COLUMNS = ["screen", "tier", "items", "reviewed", OUTCOME_FINDING_REAL, OUTCOME_ALREADY_KNOWN,
+                 OUTCOME_FINDING_NOT_REAL, OUTCOME_DATA_PROBLEM, "ppv", "ppv_low", "ppv_high",
+                 "median_hours_to_review"]
 
 
 def yield_table(engine: Engine, since=None) -> pd.DataFrame:
     """Per screen and tier: items flagged (first_flagged_at >= since), items reviewed, each item's
-    latest outcome counted, PPV = (confirmed + already_known) / reviewed with its 95 % Wilson
+    latest outcome counted, PPV = (finding_real + already_known) / reviewed with its 95 % Wilson
     interval, and the median hours from first flag to first review."""
     t, r = worklist_item, review
     q = select(t.c.item_id, t.c.screen, t.c.tier, t.c.first_flagged_at)

@@ -87,13 +87,30 @@ def test_show_without_a_worklist_says_so(tmp_path, capsys):
 
 def test_review_closes_the_item_and_show_hides_it(out, capsys):
     top = read_items(open_store(sqlite_url(out))).iloc[0]["item_id"]
-    code, text, _ = run(capsys, "review", top, "--outcome", "confirmed", "--role", "registrar",
+    code, text, _ = run(capsys, "review", top, "--outcome", "finding_real", "--role", "registrar",
                         "--at", "2026-03-02T09:00:00Z", "--out", out)
     assert code == 0 and "item closed" in text and "pat-" not in text
     _, shown, _ = run(capsys, "show", "--db", sqlite_url(out))   # OUT/worklist.parquet is the night's copy
     assert "pat-A" not in shown
     _, shown_all, _ = run(capsys, "show", "--db", sqlite_url(out), "--include-closed")
     assert "pat-A" in shown_all and "closed" in shown_all
+
+
+def test_review_help_names_only_the_new_outcomes(capsys):
+    with pytest.raises(SystemExit):
+        parser().parse_args(["review", "--help"])
+    text = " ".join(capsys.readouterr().out.split())
+    assert "finding_real, finding_not_real, already_known, data_problem" in text
+    assert "confirmed" not in text
+
+
+def test_review_takes_the_old_word_confirmed_as_finding_real(out, capsys):
+    top = read_items(open_store(sqlite_url(out))).iloc[0]["item_id"]
+    code, text, _ = run(capsys, "review", top, "--outcome", "confirmed", "--role", "registrar",
+                        "--at", "2026-03-02T09:00:00Z", "--out", out)
+    assert code == 0 and "item closed" in text
+    closed = read_items(open_store(sqlite_url(out))).set_index("item_id").loc[top]
+    assert closed["status_reason"] == "reviewed: finding_real"
 
 
 def test_review_with_unknown_outcome_fails_with_exit_2(out, capsys):
@@ -105,7 +122,7 @@ def test_review_with_unknown_outcome_fails_with_exit_2(out, capsys):
 def test_review_import_reports_rejects_by_line_and_exits_1(out, capsys, tmp_path):
     top = read_items(open_store(sqlite_url(out))).iloc[0]["item_id"]
     csv = tmp_path / "staff.csv"
-    csv.write_text(f"item_id,reviewed_at,reviewer_role,outcome\n{top},2026-03-02T09:00:00Z,nurse,confirmed\n"
+    csv.write_text(f"item_id,reviewed_at,reviewer_role,outcome\n{top},2026-03-02T09:00:00Z,nurse,finding_real\n"
                    f"{top},2026-03-02T10:00:00Z,nurse,maybe\n")
     code, text, _ = run(capsys, "review", "--import-csv", csv, "--out", out)
     assert code == 1
@@ -115,12 +132,14 @@ def test_review_import_reports_rejects_by_line_and_exits_1(out, capsys, tmp_path
 
 def test_yield_prints_a_table_per_screen_and_tier(out, capsys):
     top = read_items(open_store(sqlite_url(out))).iloc[0]["item_id"]
-    run(capsys, "review", top, "--outcome", "confirmed", "--role", "registrar", "--at", "2026-03-02T04:00:00Z",
+    run(capsys, "review", top, "--outcome", "finding_real", "--role", "registrar", "--at", "2026-03-02T04:00:00Z",
         "--out", out)
     code, text, _ = run(capsys, "yield", "--out", out)
     rows = [line.split() for line in text.splitlines()]
-    assert code == 0 and rows[0][:4] == ["screen", "tier", "items", "reviewed"]
-    # tier 1: 1 item, reviewed and confirmed 2 h after the flag; Wilson 1/1 = 0.21 to 1.00
+    assert code == 0 and rows[0] == ["screen", "tier", "items", "reviewed", "finding_real", "already_known", "ppv",
+                                     "ppv_95ci", "median_h_to_review"]
+    assert "confirmed" not in text
+    # tier 1: 1 item, reviewed as a real finding 2 h after the flag; Wilson 1/1 = 0.21 to 1.00
     # (z^2/(1+z^2) = 0.2065, by hand).
     assert rows[2] == ["hyperkalemia", "1", "1", "1", "1", "0", "1.00", "0.21-1.00", "2.0"]
     assert rows[3][:4] == ["hyperkalemia", "2", "2", "0"] and rows[3][6] == "-"

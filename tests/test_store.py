@@ -9,9 +9,12 @@ import os
 import numpy as np
 import pandas as pd
 import pytest
-from sqlalchemy import text
+from sqlalchemy import create_engine, insert, inspect, text
+from sqlalchemy.exc import IntegrityError
 
-from pipeline.store import (metadata, export_items, import_reviews_csv, open_store, read_items, record_review,
+from pipeline import store
+from pipeline.store import (OUTCOMES, SCHEMA_VERSION, StoreSchemaError, cardiosieve_schema, export_items,
+                            import_reviews_csv, metadata, open_store, read_items, record_review, review,
                             upsert_items, wilson_interval, worklist_item, yield_table)
 from pipeline.worklist import (FINDING_COLUMNS, STATUS_CLOSED, STATUS_OPEN, STATUS_REOPENED, build_items)
 
@@ -45,11 +48,16 @@ def night(engine, rows, now=NIGHT1, run_id="run-1"):
     return items, upsert_items(engine, items)
 
 
+def drop_everything(url):
+    """Drop the store's tables at `url` (the PostgreSQL tests share one database)."""
+    e = create_engine(url)
+    metadata.drop_all(e)
+    e.dispose()
+
+
 def fresh(url):
-    engine = open_store(url)
-    metadata.drop_all(engine)
-    metadata.create_all(engine)
-    return engine
+    drop_everything(url)
+    return open_store(url)
 
 
 @pytest.fixture
@@ -91,6 +99,8 @@ def test_open_store_creates_sqlite_file_and_tables(tmp_path):
     engine = open_store(f"sqlite:///{tmp_path / 'new' / 'worklist.sqlite'}")
     assert (tmp_path / "new" / "worklist.sqlite").exists()
     assert read_items(engine).empty
+    with engine.connect() as conn:
+        assert conn.execute(cardiosieve_schema.select()).all() == [(1, SCHEMA_VERSION)]
 
 
 def test_running_the_same_window_twice_gives_the_identical_table(engine):
@@ -137,17 +147,17 @@ def test_next_night_updates_the_item_and_keeps_first_flagged_at(engine):
 def test_closed_item_is_not_reopened_by_a_milder_finding(engine):
     items, _ = night(engine, FIRST)
     iid = items.set_index("ecg_id").loc["e1", "item_id"]
-    record_review(engine, iid, "not_confirmed", "registrar", None, pd.Timestamp("2026-03-02 08:00", tz="UTC"))
+    record_review(engine, iid, "finding_not_real", "registrar", None, pd.Timestamp("2026-03-02 08:00", tz="UTC"))
     _, counts = night(engine, [finding("e5", "p1", "2026-03-02 20:00", tier=1, severity=0.5)], now=NIGHT2)
     row = read_items(engine).set_index("item_id").loc[iid]
-    assert row["status"] == STATUS_CLOSED and row["status_reason"] == "reviewed: not_confirmed"
+    assert row["status"] == STATUS_CLOSED and row["status_reason"] == "reviewed: finding_not_real"
     assert counts["reopened"] == 0
 
 
 def test_closed_item_reopens_for_a_more_severe_finding(engine):
     items, _ = night(engine, FIRST)
     iid = items.set_index("ecg_id").loc["e2", "item_id"]   # tier 2, severity 0.4
-    record_review(engine, iid, "not_confirmed", "registrar", None, pd.Timestamp("2026-03-02 08:00", tz="UTC"))
+    record_review(engine, iid, "finding_not_real", "registrar", None, pd.Timestamp("2026-03-02 08:00", tz="UTC"))
     _, counts = night(engine, [finding("e6", "p2", "2026-03-02 20:00", tier=1, severity=0.5)], now=NIGHT2)
     row = read_items(engine).set_index("item_id").loc[iid]
     assert counts["reopened"] == 1
@@ -160,7 +170,7 @@ def test_closed_item_reopens_for_a_more_severe_finding(engine):
 def test_upsert_guards_the_reopen_rule_even_without_stored_items_given_to_build(engine):
     items, _ = night(engine, FIRST)
     iid = items.set_index("ecg_id").loc["e1", "item_id"]
-    record_review(engine, iid, "confirmed", "registrar", None, pd.Timestamp("2026-03-02 08:00", tz="UTC"))
+    record_review(engine, iid, "finding_real", "registrar", None, pd.Timestamp("2026-03-02 08:00", tz="UTC"))
     rebuilt = build_items(findings(*FIRST), None, None, "run-x", NIGHT1)   # caller forgot `existing`
     counts = upsert_items(engine, rebuilt)
     assert read_items(engine).set_index("item_id").loc[iid, "status"] == STATUS_CLOSED
@@ -183,7 +193,7 @@ def test_sqlite_and_postgresql_give_the_same_table(sqlite_engine, pg_engine):
         night(e, FIRST)
         night(e, [finding("e4", "p1", "2026-03-02 20:00", tier=1, severity=0.9),
                   finding("e9", "p9", "2026-03-02 21:00", severity=0.3)], now=NIGHT2, run_id="run-2")
-        record_review(e, read_items(e).iloc[0]["item_id"], "confirmed", "registrar", "ok",
+        record_review(e, read_items(e).iloc[0]["item_id"], "finding_real", "registrar", "ok",
                       pd.Timestamp("2026-03-03 08:00", tz="UTC"))
     pd.testing.assert_frame_equal(read_items(sqlite_engine), read_items(pg_engine))
     pd.testing.assert_frame_equal(yield_table(sqlite_engine), yield_table(pg_engine))
@@ -193,21 +203,22 @@ def test_sqlite_and_postgresql_give_the_same_table(sqlite_engine, pg_engine):
 def test_record_review_closes_the_item_and_it_drops_to_the_end(engine):
     items, _ = night(engine, FIRST)
     top = read_items(engine).iloc[0]["item_id"]
-    assert record_review(engine, top, "Confirmed", "cardiology registrar", "seen",
+    assert record_review(engine, top, "Finding real", "cardiology registrar", "seen",
                          pd.Timestamp("2026-03-02 09:00", tz="UTC"))
     after = read_items(engine)
     assert after.iloc[-1]["item_id"] == top and after.iloc[-1]["status"] == STATUS_CLOSED
-    assert after.iloc[-1]["status_reason"] == "reviewed: confirmed"
+    assert after.iloc[-1]["status_reason"] == "reviewed: finding_real"
     # the same review again is recognised, not stored twice
-    assert not record_review(engine, top, "confirmed", "cardiology registrar", None,
+    assert not record_review(engine, top, "finding_real", "cardiology registrar", None,
                              pd.Timestamp("2026-03-02 09:00", tz="UTC"))
 
 
 @pytest.mark.parametrize("item,outcome,role,at,why", [
-    ("wl-0000000000000000", "confirmed", "registrar", "2026-03-02 09:00", "unknown_item"),
+    ("wl-0000000000000000", "finding_real", "registrar", "2026-03-02 09:00", "unknown_item"),
     (None, "maybe", "registrar", "2026-03-02 09:00", "unknown_outcome"),
-    (None, "confirmed", "", "2026-03-02 09:00", "role"),
-    (None, "confirmed", "registrar", "2026-03-01 09:00", "reviewed_before_flagged"),
+    (None, "real", "registrar", "2026-03-02 09:00", "unknown_outcome"),   # no guessing at part-words
+    (None, "finding_real", "", "2026-03-02 09:00", "role"),
+    (None, "finding_real", "registrar", "2026-03-01 09:00", "reviewed_before_flagged"),
 ])
 def test_record_review_refuses_bad_input(sqlite_engine, item, outcome, role, at, why):
     items, _ = night(sqlite_engine, FIRST)
@@ -221,13 +232,13 @@ def test_csv_import_takes_good_rows_and_rejects_bad_ones_with_reasons(engine, tm
     csv = tmp_path / "reviews.csv"
     csv.write_text(
         "item_id,reviewed_at,reviewer_role,outcome,note\n"
-        f"{a},2026-03-02T09:00:00Z,registrar,Confirmed,\n"                  # line 2 ok
-        f"{b},2026-03-02T10:00:00+01:00,nurse,not confirmed,repeat sent\n"  # line 3 ok
-        f"{c},2026-03-02 09:00,registrar,confirmed,\n"                      # line 4 naive time
-        f"{c},yesterday,registrar,confirmed,\n"                             # line 5 unparseable
-        f"wl-ffffffffffffffff,2026-03-02T09:00:00Z,registrar,confirmed,\n"  # line 6 unknown item
-        f"{c},2026-03-02T09:00:00Z,registrar,probably,\n"                   # line 7 unknown outcome
-        f"{c},2026-03-02T09:00:00Z,,confirmed,\n")                          # line 8 no role
+        f"{a},2026-03-02T09:00:00Z,registrar,Finding real,\n"                  # line 2 ok
+        f"{b},2026-03-02T10:00:00+01:00,nurse,finding-not-real,repeat sent\n"  # line 3 ok
+        f"{c},2026-03-02 09:00,registrar,finding_real,\n"                      # line 4 naive time
+        f"{c},yesterday,registrar,finding_real,\n"                             # line 5 unparseable
+        f"wl-ffffffffffffffff,2026-03-02T09:00:00Z,registrar,finding_real,\n"  # line 6 unknown item
+        f"{c},2026-03-02T09:00:00Z,registrar,probably,\n"                      # line 7 unknown outcome
+        f"{c},2026-03-02T09:00:00Z,,finding_real,\n")                          # line 8 no role
     counts = import_reviews_csv(engine, csv)
     assert (counts["read"], counts["imported"], counts["duplicate"], counts["rejected"]) == (7, 2, 0, 5)
     assert [(r["line"], r["column"], r["reason"]) for r in counts["rejects"]] == [
@@ -239,18 +250,42 @@ def test_csv_import_takes_good_rows_and_rejects_bad_ones_with_reasons(engine, tm
     assert (again["imported"], again["duplicate"], again["rejected"]) == (0, 2, 5)
 
 
+def stored_outcomes(engine):
+    with engine.connect() as conn:
+        return conn.execute(review.select().with_only_columns(review.c.item_id, review.c.outcome)
+                            .order_by(review.c.review_id)).all()
+
+
+def test_old_outcome_words_are_accepted_and_stored_under_the_new_names(engine, tmp_path):
+    items, _ = night(engine, FIRST)
+    a, b, c = items["item_id"]
+    at = pd.Timestamp("2026-03-02 09:00", tz="UTC")
+    record_review(engine, a, "confirmed", "registrar", None, at)
+    record_review(engine, b, "Not confirmed", "registrar", None, at)
+    csv = tmp_path / "old_words.csv"
+    csv.write_text("item_id,reviewed_at,reviewer_role,outcome\n"
+                   f"{c},2026-03-02T10:00:00Z,nurse,CONFIRMED\n"
+                   f"{c},2026-03-02T11:00:00Z,nurse,not-confirmed\n")
+    counts = import_reviews_csv(engine, csv)
+    assert (counts["imported"], counts["rejected"]) == (2, 0)
+    assert stored_outcomes(engine) == [(a, "finding_real"), (b, "finding_not_real"), (c, "finding_real"),
+                                       (c, "finding_not_real")]
+    reasons = read_items(engine).set_index("item_id")["status_reason"]
+    assert reasons[a] == "reviewed: finding_real" and reasons[c] == "reviewed: finding_not_real"
+
+
 def test_csv_import_with_site_timezone_reads_local_times(sqlite_engine, tmp_path):
     items, _ = night(sqlite_engine, FIRST)
     csv = tmp_path / "reviews.csv"
     # 2026-03-02 is winter time in Dublin (UTC+0); 2026-07-02 would be UTC+1.
-    csv.write_text(f"item_id,reviewed_at,reviewer_role,outcome\n{items['item_id'][0]},2026-03-02 09:00,registrar,confirmed\n")
+    csv.write_text(f"item_id,reviewed_at,reviewer_role,outcome\n{items['item_id'][0]},2026-03-02 09:00,registrar,finding_real\n")
     counts = import_reviews_csv(sqlite_engine, csv, timezone="Europe/Dublin")
     assert counts["imported"] == 1 and counts["rejected"] == 0
 
 
 def test_csv_without_a_required_column_is_a_whole_file_error(sqlite_engine, tmp_path):
     csv = tmp_path / "reviews.csv"
-    csv.write_text("item_id,outcome\nx,confirmed\n")
+    csv.write_text("item_id,outcome\nx,finding_real\n")
     with pytest.raises(ValueError, match="reviewed_at"):
         import_reviews_csv(sqlite_engine, csv)
 
@@ -295,16 +330,17 @@ def test_yield_against_a_hand_computed_example(engine):
     items, _ = night(engine, rows)
     ids = items.set_index("ecg_id")["item_id"]
     at = lambda h: NIGHT1 + pd.Timedelta(hours=h)
-    record_review(engine, ids["e0"], "confirmed", "registrar", None, at(2))
-    record_review(engine, ids["e1"], "confirmed", "registrar", None, at(4))
+    record_review(engine, ids["e0"], "finding_real", "registrar", None, at(2))
+    record_review(engine, ids["e1"], "finding_real", "registrar", None, at(4))
     record_review(engine, ids["e2"], "already_known", "registrar", None, at(10))
-    record_review(engine, ids["e3"], "not_confirmed", "registrar", None, at(30))
+    record_review(engine, ids["e3"], "finding_not_real", "registrar", None, at(30))
     # e3 reviewed again later as data_problem: its latest outcome counts, its first review times it
     record_review(engine, ids["e3"], "data_problem", "consultant", None, at(40))
     y = yield_table(engine).set_index(["screen", "tier"])
     hk = y.loc[("hyperkalemia", 2)]
-    # By hand: 5 items, 4 reviewed; true positives = confirmed 2 + already_known 1 = 3; PPV 3/4.
-    assert (hk["items"], hk["reviewed"], hk["confirmed"], hk["already_known"], hk["data_problem"]) == (5, 4, 2, 1, 1)
+    # By hand: 5 items, 4 reviewed; true positives = finding_real 2 + already_known 1 = 3; PPV 3/4.
+    assert (hk["items"], hk["reviewed"], hk["finding_real"], hk["already_known"], hk["finding_not_real"],
+            hk["data_problem"]) == (5, 4, 2, 1, 0, 1)
     assert hk["ppv"] == pytest.approx(0.75)
     # Wilson 3/4, z = 1.959964: centre (0.75 + z^2/8) / (1 + z^2/4) = 0.627527,
     # half-width z/(1 + z^2/4) * sqrt(0.75*0.25/4 + z^2/64) = 0.326886 -> 0.30064 to 0.95441 (by hand).
@@ -337,3 +373,214 @@ def test_export_csv_in_rank_order_with_formula_text_defused(engine):
 def test_export_refuses_unknown_format(sqlite_engine):
     with pytest.raises(ValueError, match="format"):
         export_items(sqlite_engine, "xlsx", io.StringIO())
+
+
+# --- schema migration 1 -> 2 (outcomes renamed) ---------------------------------------------------
+# The store as the code before schema versioning created it (no cardiosieve_schema table; the
+# outcome check names confirmed / not_confirmed), written out by hand so that it stays frozen
+# whatever the current metadata becomes. {ts} and {serial} are the dialect's types.
+V1_DDL = [
+    """CREATE TABLE worklist_item (
+        item_id VARCHAR(40) NOT NULL, rank INTEGER, tier INTEGER NOT NULL, screen VARCHAR(64) NOT NULL,
+        patient_id TEXT NOT NULL, ecg_id TEXT NOT NULL, ecg_at {ts} NOT NULL, score FLOAT NOT NULL,
+        summary TEXT, evidence TEXT, caveats TEXT, territories TEXT, rule_version VARCHAR(64),
+        run_id VARCHAR(128), first_flagged_at {ts} NOT NULL, status VARCHAR(16) NOT NULL,
+        last_updated_at {ts} NOT NULL, status_reason TEXT, episode_start {ts} NOT NULL,
+        episode_end {ts} NOT NULL, other_ecg_ids TEXT, score_parts TEXT,
+        PRIMARY KEY (item_id),
+        CONSTRAINT ck_worklist_item_status CHECK (status IN ('open', 'reopened', 'explained', 'closed')),
+        CONSTRAINT ck_worklist_item_tier CHECK (tier BETWEEN 1 AND 4))""",
+    "CREATE INDEX ix_worklist_item_rank ON worklist_item (rank)",
+    "CREATE INDEX ix_worklist_item_patient_screen ON worklist_item (patient_id, screen)",
+    """CREATE TABLE review (
+        review_id {serial} NOT NULL, item_id VARCHAR(40) NOT NULL, reviewed_at {ts} NOT NULL,
+        reviewer_role VARCHAR(128) NOT NULL, outcome VARCHAR(16) NOT NULL, note TEXT,
+        recorded_via VARCHAR(16) NOT NULL,
+        PRIMARY KEY (review_id),
+        CONSTRAINT ck_review_outcome CHECK (outcome IN ('confirmed', 'not_confirmed', 'already_known', 'data_problem')),
+        CONSTRAINT uq_review_entry UNIQUE (item_id, reviewed_at, reviewer_role),
+        FOREIGN KEY(item_id) REFERENCES worklist_item (item_id))""",
+    "CREATE INDEX ix_review_item ON review (item_id)",
+]
+V1_TYPES = {"sqlite": {"ts": "DATETIME", "serial": "INTEGER"},
+            "postgresql": {"ts": "TIMESTAMP WITH TIME ZONE", "serial": "SERIAL"}}
+# Four tier-2 hyperkalemia items; i1 to i3 reviewed (i2 twice, latest counts), i4 still open.
+V1_FINDINGS = [finding(f"e{i}", f"p{i}", "2026-03-01 20:00", tier=2) for i in range(1, 5)]
+V1_REVIEWS = [   # (item, hours after NIGHT1, role, outcome, note)
+    ("e1", 6, "registrar", "confirmed", None),
+    ("e2", 6, "registrar", "data_problem", None),
+    ("e2", 7, "consultant", "not_confirmed", "not confirmed on the repeat ECG"),   # note text stays
+    ("e3", 6, "registrar", "already_known", None),
+]
+RENAMED = {"confirmed": "finding_real", "not_confirmed": "finding_not_real"}
+
+
+def build_v1_store(url):
+    """A version-1 store at `url` holding items, closed items and reviews with the old outcomes."""
+    engine = create_engine(url)
+    types = V1_TYPES[engine.dialect.name]
+    with engine.begin() as conn:
+        for ddl in V1_DDL:
+            conn.exec_driver_sql(ddl.format(**types))
+    items, _ = night(engine, V1_FINDINGS)   # worklist_item's columns are unchanged in version 2
+    ids = items.set_index("ecg_id")["item_id"]
+    rows = [{"item_id": ids[e], "reviewed_at": NIGHT1 + pd.Timedelta(hours=h), "reviewer_role": role,
+             "outcome": outcome, "note": note, "recorded_via": "cli"} for e, h, role, outcome, note in V1_REVIEWS]
+    latest = {r["item_id"]: r for r in rows}
+    with engine.begin() as conn:
+        conn.execute(insert(review), rows)   # the Table object checks nothing: the old CHECK does
+        for iid, r in latest.items():
+            conn.execute(worklist_item.update().where(worklist_item.c.item_id == iid).values(
+                status=STATUS_CLOSED, status_reason=f"reviewed: {r['outcome']}", last_updated_at=r["reviewed_at"]))
+    return engine
+
+
+def snapshot(engine):
+    """Everything a migration may touch: both tables' rows, the version row, the outcome check
+    and review's indexes and unique constraints."""
+    with engine.connect() as conn:
+        reviews = pd.DataFrame(conn.execute(review.select().order_by(review.c.review_id)).mappings().all())
+        have = inspect(conn)
+        version = (conn.execute(cardiosieve_schema.select()).all()
+                   if have.has_table("cardiosieve_schema") else None)
+        checks = {c["name"]: " ".join(str(c["sqltext"]).split()) for c in have.get_check_constraints("review")}
+        indexes = sorted(i["name"] for i in have.get_indexes("review"))
+        uniques = sorted(u["name"] for u in have.get_unique_constraints("review"))
+    return {"items": table(engine), "reviews": reviews, "version": version, "checks": checks,
+            "indexes": indexes, "uniques": uniques}
+
+
+@pytest.fixture(params=["sqlite", pytest.param("postgresql", marks=needs_pg)])
+def empty_url(request, tmp_path):
+    """A database URL with none of the store's tables."""
+    if request.param == "sqlite":
+        yield f"sqlite:///{tmp_path / 'worklist.sqlite'}"
+    else:
+        drop_everything(PG_URL)
+        yield PG_URL
+        drop_everything(PG_URL)
+
+
+def test_opening_a_version_1_store_renames_outcomes_and_keeps_every_row(empty_url):
+    old = build_v1_store(empty_url)
+    before = snapshot(old)
+    old.dispose()
+    assert before["version"] is None and len(before["reviews"]) == 4 and len(before["items"]) == 4
+    assert "'confirmed'" in before["checks"]["ck_review_outcome"]
+
+    engine = open_store(empty_url)
+    after = snapshot(engine)
+    expected_reviews = before["reviews"].assign(outcome=before["reviews"]["outcome"].replace(RENAMED))
+    pd.testing.assert_frame_equal(after["reviews"], expected_reviews)   # same ids, times, notes
+    expected_items = before["items"].assign(status_reason=before["items"]["status_reason"].replace(
+        {f"reviewed: {o}": f"reviewed: {n}" for o, n in RENAMED.items()}))
+    pd.testing.assert_frame_equal(after["items"], expected_items)
+    assert sorted(after["items"]["status_reason"].dropna()) == [
+        "reviewed: already_known", "reviewed: finding_not_real", "reviewed: finding_real"]
+    assert after["version"] == [(1, SCHEMA_VERSION)]
+    check = after["checks"]["ck_review_outcome"]
+    assert all(f"'{o}'" in check for o in OUTCOMES) and "'confirmed'" not in check and "'not_confirmed'" not in check
+    assert (after["indexes"], after["uniques"]) == (before["indexes"], before["uniques"])
+
+    # The new check refuses the old words written straight into the table, and takes the new
+    # ones (finding_not_real is 16 characters, the width of the column).
+    sneak = {"item_id": after["items"]["item_id"][0], "reviewed_at": NIGHT2, "reviewer_role": "direct",
+             "recorded_via": "cli"}
+    for word in ("confirmed", "not_confirmed"):
+        with pytest.raises(IntegrityError), engine.begin() as conn:
+            conn.execute(insert(review).values(**sneak, outcome=word))
+    with engine.connect() as conn:
+        conn.execute(insert(review).values(**sneak, outcome="finding_not_real"))
+        conn.rollback()
+
+    # PPV as before the rename: (finding_real 1 + already_known 1) / reviewed 3, by each item's latest review.
+    hk = yield_table(engine).set_index(["screen", "tier"]).loc[("hyperkalemia", 2)]
+    assert (hk["items"], hk["reviewed"], hk["finding_real"], hk["already_known"], hk["finding_not_real"],
+            hk["data_problem"]) == (4, 3, 1, 1, 1, 0)
+    assert hk["ppv"] == pytest.approx(2 / 3)
+
+    # A second open finds version 2 and changes nothing.
+    engine.dispose()
+    again = open_store(empty_url)
+    second = snapshot(again)
+    for key, value in after.items():
+        if isinstance(value, pd.DataFrame):
+            pd.testing.assert_frame_equal(second[key], value)
+        else:
+            assert second[key] == value, key
+
+    # The migrated store keeps working: a new review gets a new id (PostgreSQL's sequence has
+    # also spent numbers on the refused inserts above, so only "above the old ones" is checked).
+    i4 = after["items"].set_index("ecg_id").loc["e4", "item_id"]
+    assert record_review(again, i4, "finding_real", "registrar", None, NIGHT2)
+    with again.connect() as conn:
+        assert conn.execute(review.select().where(review.c.item_id == i4)).one().review_id > 4
+    again.dispose()
+
+
+def test_a_failing_migration_leaves_the_version_1_store_as_it_was(empty_url, monkeypatch):
+    # Make the final row-count check fail after the rewrites (and, on SQLite, the table rebuild)
+    # have run: the one transaction must roll all of it back, DDL included.
+    old = build_v1_store(empty_url)
+    before = snapshot(old)
+    old.dispose()
+    real = store._row_counts
+    calls = []
+
+    def miscount(conn, tables):
+        calls.append(1)
+        counts = real(conn, tables)
+        return counts if len(calls) == 1 else {**counts, "review": counts["review"] - 1}
+
+    monkeypatch.setattr(store, "_row_counts", miscount)
+    with pytest.raises(StoreSchemaError, match="row counts"):
+        open_store(empty_url)
+    untouched = create_engine(empty_url)
+    left = snapshot(untouched)
+    with untouched.connect() as conn:
+        assert not inspect(conn).has_table("review_migrating")
+    untouched.dispose()
+    for key, value in before.items():
+        if isinstance(value, pd.DataFrame):
+            pd.testing.assert_frame_equal(left[key], value)
+        else:
+            assert left[key] == value, key
+
+    monkeypatch.setattr(store, "_row_counts", real)
+    migrated = open_store(empty_url)
+    assert snapshot(migrated)["version"] == [(1, SCHEMA_VERSION)]
+    migrated.dispose()
+
+
+def test_processes_opening_a_version_1_store_at_once_migrate_it_once(empty_url):
+    import threading
+
+    build_v1_store(empty_url).dispose()
+    start, errors, engines = threading.Barrier(4), [], []
+
+    def opener():
+        start.wait()
+        try:
+            engines.append(open_store(empty_url))
+        except Exception as exc:   # collected: an exception in a thread would not fail the test
+            errors.append(exc)
+
+    threads = [threading.Thread(target=opener) for _ in range(4)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert errors == []
+    assert [o for _, o in stored_outcomes(engines[0])] == [
+        "finding_real", "data_problem", "finding_not_real", "already_known"]
+    for e in engines:
+        e.dispose()
+
+
+def test_a_store_from_newer_code_is_refused(empty_url):
+    engine = open_store(empty_url)
+    with engine.begin() as conn:
+        conn.execute(cardiosieve_schema.update().values(version=SCHEMA_VERSION + 1))
+    engine.dispose()
+    with pytest.raises(StoreSchemaError, match="newer"):
+        open_store(empty_url)

@@ -294,7 +294,7 @@ def test_stored_item_is_explained_by_the_next_nights_results_and_kept():
 
 # --- reopen rule ------------------------------------------------------------------------------
 def closed(items):
-    return items.assign(status=STATUS_CLOSED, status_reason="reviewed: not_confirmed")
+    return items.assign(status=STATUS_CLOSED, status_reason="reviewed: finding_not_real")
 
 
 def test_closed_item_stays_closed_for_an_equal_or_milder_finding_in_its_episode():
@@ -302,7 +302,7 @@ def test_closed_item_stays_closed_for_an_equal_or_milder_finding_in_its_episode(
     night2 = build(findings(finding("e2", at="2026-03-02 20:00", tier=2, severity=0.6)), existing=night1,
                    now=pd.Timestamp("2026-03-03 02:00", tz="UTC"))
     assert night2.iloc[0]["status"] == STATUS_CLOSED
-    assert night2.iloc[0]["status_reason"] == "reviewed: not_confirmed"
+    assert night2.iloc[0]["status_reason"] == "reviewed: finding_not_real"
 
 
 @pytest.mark.parametrize("tier,severity", [(1, 0.1), (2, 0.61)])
