@@ -9,6 +9,11 @@ patient bucket on a distributed engine. Every lookup names its anchor and bounds
   of results collected at the same moment the last resulted wins, then the greatest result_id.
 - potassium trend: the patient's previous potassium, collected before the chosen one and at
   most k_trend_h before it.
+- rejected potassium (`k_rejected_reason`): only when no accepted potassium was found, the reason
+  code of the patient's latest REJECTED potassium row collected in the same lab window (latest
+  collected_at; at one moment the greatest result_id), else null. The rows come from the caller
+  (`lab_rejects`); a rejected row whose patient_id or collected_at could not be read cannot be
+  placed and is not counted. Only the reason code travels, never the rejected value.
 - prior ECG: the patient's most recent ECG acquired in
   [acquired_at - prior_ecg_max_days, acquired_at - prior_ecg_min_gap_h] (both edges included);
   ties at one moment go to the greatest ecg_id.
@@ -30,11 +35,15 @@ _MIN = pd.Timedelta(minutes=1)
 
 
 def align(ecg: pd.DataFrame, ecg_history: pd.DataFrame, lab: pd.DataFrame, patient: pd.DataFrame,
-          medication: pd.DataFrame | None, settings: Settings) -> pd.DataFrame:
+          medication: pd.DataFrame | None, settings: Settings,
+          lab_rejects: pd.DataFrame | None = None) -> pd.DataFrame:
     """One row per row of `ecg` (the ECGs to screen), in ecg_id order, with the aligned columns.
 
     ecg_history holds the candidate prior ECGs (it may include `ecg` itself); lab holds labs of
-    any analyte, already in canonical units; medication None means the lake has no such table."""
+    any analyte, already in canonical units; medication None means the lake has no such table.
+    lab_rejects (optional) holds the rejected lab rows that can still be placed: patient_id,
+    collected_at, analyte (as in `lab`), reason, and result_id if known; None means the caller
+    passed none, and k_rejected_reason is then null throughout."""
     w = settings.windows
     out = ecg.sort_values("ecg_id", kind="stable").reset_index(drop=True)
     anchors = out[["ecg_id", "patient_id", "acquired_at"]].sort_values("acquired_at", kind="stable")
@@ -55,6 +64,9 @@ def align(ecg: pd.DataFrame, ecg_history: pd.DataFrame, lab: pd.DataFrame, patie
             near = near.rename(columns={"prev_value": "k_prev_mmol_l"})
             near["k_change_mmol_l"] = near["k_mmol_l"] - near["k_prev_mmol_l"]
         out = out.merge(near.drop(columns=["patient_id", "acquired_at", "collected_at"]), on="ecg_id", how="left")
+    out = out.merge(_rejected_potassium(anchors, lab_rejects, code_to_analyte, before, after), on="ecg_id",
+                    how="left")
+    out["k_rejected_reason"] = out["k_rejected_reason"].where(out["k_mmol_l"].isna())
     out = out.merge(_troponin(anchors, lab[analyte == "troponin"], settings, before, after), on="ecg_id", how="left")
     out = out.merge(prior_ecg(anchors, ecg_history, pd.Timedelta(hours=w["prior_ecg_min_gap_h"]),
                               pd.Timedelta(days=w["prior_ecg_max_days"])), on="ecg_id", how="left")
@@ -104,6 +116,31 @@ def _previous_value(labs: pd.DataFrame, lookback: pd.Timedelta) -> pd.DataFrame:
     recent = (s["collected_at"] - prev_at) <= lookback
     return pd.DataFrame({"result_id": s["result_id"], "prev_value": prev_value.where(recent),
                          "prev_collected_at": prev_at.where(recent)}).reset_index(drop=True)
+
+
+def latest_in_window(anchors: pd.DataFrame, rows: pd.DataFrame, before: pd.Timedelta,
+                     after: pd.Timedelta, value: str) -> pd.DataFrame:
+    """For each anchor (ecg_id, patient_id, acquired_at) the `value` of the same patient's row with
+    the latest collected_at in [acquired_at - before, acquired_at + after] (both edges included);
+    at one moment the row sorted last (callers sort ties). Columns: ecg_id, `value`."""
+    right = rows[["patient_id", "collected_at", value]].dropna(subset=["patient_id", "collected_at"])
+    right = right.drop_duplicates(["patient_id", "collected_at"], keep="last").sort_values("collected_at", kind="stable")
+    left = anchors.assign(_until=anchors["acquired_at"] + after).sort_values("_until", kind="stable")
+    got = pd.merge_asof(left, right, left_on="_until", right_on="collected_at", by="patient_id",
+                        direction="backward", tolerance=before + after, allow_exact_matches=True)
+    return got[["ecg_id", value]]
+
+
+def _rejected_potassium(anchors, lab_rejects, code_to_analyte, before, after) -> pd.DataFrame:
+    """k_rejected_reason per ECG: the reason of the latest rejected potassium in the lab window."""
+    if lab_rejects is None or lab_rejects.empty:
+        return anchors[["ecg_id"]].assign(k_rejected_reason=pd.Series(pd.NA, index=anchors.index, dtype="str"))
+    rej = lab_rejects[lab_rejects["analyte"].map(code_to_analyte) == "potassium"]
+    ties = ["patient_id", "collected_at"] + (["result_id"] if "result_id" in rej.columns else [])
+    rej = rej.sort_values(ties, kind="stable", na_position="first")
+    at = pd.to_datetime(rej["collected_at"], utc=True).astype(anchors["acquired_at"].dtype)  # merge keys' unit
+    got = latest_in_window(anchors, rej.assign(collected_at=at), before, after, "reason")
+    return got.rename(columns={"reason": "k_rejected_reason"})
 
 
 def prior_ecg(anchors: pd.DataFrame, history: pd.DataFrame, min_gap: pd.Timedelta,
@@ -170,6 +207,7 @@ def _demographics(anchors: pd.DataFrame, patient: pd.DataFrame) -> pd.DataFrame:
 def _finish_types(out: pd.DataFrame) -> pd.DataFrame:
     for prefix in ANALYTE_PREFIX.values():
         out[f"{prefix}_hemolyzed"] = out[f"{prefix}_hemolyzed"].astype("boolean")
+    out["k_rejected_reason"] = out["k_rejected_reason"].astype("str")
     out["trop_n"] = out["trop_n"].fillna(0).astype("Int64")
     out["qt_drug_count_24h"] = out["qt_drug_count_24h"].astype("Int64")
     out["loop_diuretic_24h"] = out["loop_diuretic_24h"].astype("boolean")

@@ -49,7 +49,7 @@ US_PER_MIN = 60 * US_PER_S
 US_PER_H = 60 * US_PER_MIN
 US_PER_DAY = 24 * US_PER_H
 
-PLANTED_FRACTION = 0.04      # per abnormal kind; the brief asks for 3-5 %
+PLANTED_FRACTION = 0.04      # per abnormal kind: 3-5 % of patients per kind (sample-lake design)
 CONTROL_FRACTION = 0.01      # near-miss controls (kind "normal", no finding expected)
 
 # ---------------------------------------------------------------- codes and units (one place)
@@ -66,7 +66,7 @@ TROPONIN_URL_NG_L = 26.0      # example 99th centile written to site.toml; sites
 
 # analyte key: (LOINC, unit, normal low, mode, high, decimals); magnesium and calcium are
 # exported in mg/dL on purpose so the loader's molar-mass conversion is exercised
-# (Mg 1.9-2.4 mg/dL = 0.78-0.99 mmol/L; Ca 8.9-10.2 mg/dL = 2.22-2.54 mmol/L, REFERENCES.md).
+# (Mg 1.9-2.4 mg/dL = 0.78-0.99 mmol/L; Ca 8.9-10.2 mg/dL = 2.22-2.55 mmol/L, docs/references.md).
 ANALYTES = {
     "potassium": (LOINC_POTASSIUM, "mmol/L", 3.6, 4.2, 5.0, 1),
     "sodium": (LOINC_SODIUM, "mmol/L", 135.5, 140.0, 144.4, 0),
@@ -98,7 +98,7 @@ I_, II, III, AVR, AVL, AVF, V1, V2, V3, V4, V5, V6 = range(12)
 LIMB = [I_, II, III, AVR, AVL, AVF]
 PRECORDIAL = [V1, V2, V3, V4, V5, V6]
 
-# Normal per-lead ranges in uV (practice values, REFERENCES.md "Normal adult ranges";
+# Normal per-lead ranges in uV (practice values, docs/references.md "Units of the ECG";
 # limb T 100-450, precordial T 150-800, ST at J within +-40, S(V1)+R(V5) < 3000).
 #            I     II    III   aVR   aVL   aVF   V1     V2     V3     V4    V5    V6
 _P_LO = [30, 60, -20, -120, -30, 30, -40, 20, 30, 30, 30, 30]
@@ -154,7 +154,7 @@ MED_SCHEMA = pa.schema([("patient_id", pa.string()),
 
 TABLES = ["ecg", "ecg_lead", "lab", "patient", "medication"]
 MANIFEST_COLUMNS = ["record", "kind", "patient_id", "ecg_id", "date", "detail", "expect_finding",
-                    "expect_territories", "table", "row_key", "reason", "column", "file"]
+                    "expect_territories", "expect_tier_at_most", "table", "row_key", "reason", "column", "file"]
 
 SITE_TOML = f'''# Site configuration of the invented sample site (cardiosieve site config format).
 [site]
@@ -190,7 +190,8 @@ class Variant:
     expect_finding: bool
     territories: str                 # comma-joined, sorted; "" = no territory expectation
     apply: Callable
-    prior: str = "maybe"             # "yes": needs a prior ECG, "no": none, "maybe": half
+    tier_at_most: int = 4            # the finding must be at this tier or more urgent (1 most urgent)
+    prior: str = "maybe"             # "yes": a prior >= 2 days before, "recent": 2-12 h before, "no", "maybe": half
     sex: str | None = None           # force "F" or "M"
     age: tuple[float, float] | None = None
     prior_detail: str | None = None  # when set, the prior ECG is a planted case too
@@ -280,6 +281,10 @@ class _Builder:
         latest_prior = idx_t - 2 * US_PER_DAY
         has_prior &= latest_prior > self.start_us
         prior_t = self.start_us + (rng.random(k) * (latest_prior - self.start_us)).astype(np.int64)
+        # "recent": the prior ECG of the same encounter, 2-12 h earlier (an episode still going on).
+        recent = need == "recent"
+        prior_t = np.where(recent, idx_t - (self.u(2, 12, k) * US_PER_H).astype(np.int64), prior_t)
+        has_prior |= recent
         prior_t = prior_t // US_PER_S * US_PER_S
         pp = np.flatnonzero(has_prior)
 
@@ -821,6 +826,66 @@ def st_persistent(b, rows, prior):
     b.add_lab(b.e_pidx[rows], b.e_t[rows] - 20 * US_PER_MIN, "troponin", b.u(3, 15, len(rows)))
 
 
+def st_wraparound(b, rows, prior):
+    # Anterior elevation wrapping round the apex to the inferior leads (a long LAD), no
+    # reciprocal depression anywhere: still ST elevation with its territories (UDMI-2018).
+    _anterior(b, rows)
+    b.st(rows, V5, 110, 200, t_cap=800)
+    b.st(rows, V6, 100, 180, t_cap=800)
+    for lead in (II, III, AVF):
+        b.st(rows, lead, 110, 190, t_cap=550)
+    b.st(rows, AVR, -80, -20)
+    b.loc[rows] = LOC["ED"]
+    b.troponin_series(rows)
+
+
+def st_posterior_no_tall_r(b, rows, prior):
+    # V1-V3 depression with the normal S-dominant V1-V2: posterior-equivalent all the same.
+    b.lead(rows, V1, st=(-180, -80), t=(50, 200))
+    b.lead(rows, V2, st=(-220, -100), t=(100, 300))
+    b.lead(rows, V3, st=(-150, -60), t=(100, 300))
+    b.loc[rows] = LOC["ED"]
+    b.troponin_series(rows)
+
+
+def st_depression_alone(b, rows, prior):
+    # Anterolateral ST depression (V3-V6) without elevation anywhere [UDMI-2018 >= 0.5 mm].
+    for lead, lo, hi in ((V3, -120, -60), (V4, -160, -70), (V5, -160, -70), (V6, -120, -60)):
+        b.st(rows, lead, lo, hi)
+    b.loc[rows] = LOC["AMU"]
+    b.troponin_series(rows)
+
+
+def st_inferior_lvh(b, rows, prior):
+    # Inferior elevation with LVH voltage: LVH does not explain inferior elevation.
+    _inferior(b, rows, recip=False)
+    n = len(rows)
+    b.L["s"][rows, V1] = b.u(-2600, -2200, n)
+    b.L["r"][rows, V5] = np.maximum(b.L["r"][rows, V5], b.u(1500, 1900, n))
+    b.loc[rows] = LOC["ED"]
+    b.troponin_series(rows)
+
+
+def st_persistent_recent(b, rows, prior):
+    # The same inferior elevation on an ECG of the same encounter hours earlier: persistent.
+    for r in (prior, rows):
+        _inferior(b, r, recip=False)
+
+
+def st_lbbb_smith(b, rows, prior):
+    # LBBB with excessively discordant ST in V2-V3: ST/S <= -0.25 (Smith 2012), Sgarbossa < 3.
+    _lbbb(b, rows, concordant=False)
+    n = len(rows)
+    for lead in (V2, V3):
+        b.L["st"][rows, lead] = np.round(-b.L["s"][rows, lead] * b.u(0.27, 0.32, n))
+    b.troponin_series(rows)
+
+
+def hk_haemolysed_severe(b, rows, prior):
+    # A severe potassium on a haemolysed specimen: unreliable, not reassuring (UKKA-2020 repeat).
+    b.set_k(rows, 6.6, 7.4, hemo=1)
+
+
 # Near-miss controls: just outside each published cut point; no finding expected.
 
 def c_k_below(b, rows, prior):
@@ -859,55 +924,70 @@ def c_haemolysed_normal(b, rows, prior):
 VARIANTS: dict[str, list[Variant]] = {
     "hyperkalemia": [
         Variant("hk_severe_signs", "hyperkalemia", "K >= 6.5 with peaked T, wide QRS, PR > 200 and flat P in II",
-                True, "", hk_severe_signs),
-        Variant("hk_moderate_peaked", "hyperkalemia", "K 6.0-6.4 with peaked precordial T", True, "", hk_moderate_peaked),
-        Variant("hk_mild_normal", "hyperkalemia", "K 5.5-5.9 with a normal ECG", True, "", hk_mild_normal),
-        Variant("hk_moderate_normal", "hyperkalemia", "K 6.0-6.4 with a normal ECG", True, "", hk_moderate_normal),
+                True, "", hk_severe_signs, tier_at_most=1),
+        Variant("hk_moderate_peaked", "hyperkalemia", "K 6.0-6.4 with peaked precordial T", True, "", hk_moderate_peaked, tier_at_most=1),
+        Variant("hk_mild_normal", "hyperkalemia", "K 5.5-5.9 with a normal ECG", True, "", hk_mild_normal, tier_at_most=4),
+        Variant("hk_moderate_normal", "hyperkalemia", "K 6.0-6.4 with a normal ECG", True, "", hk_moderate_normal, tier_at_most=3),
         Variant("hk_severe_brady", "hyperkalemia", "K >= 6.5 with heart rate < 50 and no visible P",
-                True, "", hk_severe_brady),
+                True, "", hk_severe_brady, tier_at_most=1),
         Variant("hk_qrs_vs_prior", "hyperkalemia", "K 6.0-6.6 with QRS widened >= 20 ms vs prior",
-                True, "", hk_qrs_vs_prior, prior="yes"),
+                True, "", hk_qrs_vs_prior, prior="yes", tier_at_most=1),
         Variant("hk_haemolysed", "hyperkalemia", "haemolysed specimen, K 5.6-7.0, normal ECG",
-                True, "", hk_haemolysed),
+                True, "", hk_haemolysed, tier_at_most=4),
         Variant("hk_no_k_none", "hyperkalemia", "peaked T, wide QRS and bradycardia; no potassium in window",
-                True, "", hk_no_k_none, prior="no"),
+                True, "", hk_no_k_none, prior="no", tier_at_most=3),
         Variant("hk_no_k_late", "hyperkalemia", "peaked T, wide QRS and bradycardia; no potassium in window",
-                True, "", hk_no_k_late, prior="no"),
+                True, "", hk_no_k_late, prior="no", tier_at_most=3),
         Variant("hk_rising", "hyperkalemia", "K 5.6-6.2 risen from 4.6-5.0 30-48 h earlier",
-                True, "", hk_rising, prior="no"),
+                True, "", hk_rising, prior="no", tier_at_most=4),
         Variant("hk_binder", "hyperkalemia", "K 6.0-6.6 with peaked T after a potassium binder",
-                True, "", hk_binder),
+                True, "", hk_binder, tier_at_most=1),
+        Variant("hk_haemolysed_severe", "hyperkalemia", "haemolysed specimen, K 6.6-7.4, normal ECG",
+                True, "", hk_haemolysed_severe, tier_at_most=2),
     ],
     "long_qt": [
-        Variant("lq_moderate", "long_qt", "QTc 468-495 ms", True, "", lq_moderate),
-        Variant("lq_high", "long_qt", "QTc above 500 ms", True, "", lq_high),
-        Variant("lq_low_k", "long_qt", "QTc 470-520 ms with K < 3.5 mmol/L", True, "", lq_low_k),
-        Variant("lq_low_mg", "long_qt", "QTc 470-520 ms with Mg < 0.70 mmol/L", True, "", lq_low_mg),
-        Variant("lq_rise", "long_qt", "QTc rise > 60 ms vs prior ECG", True, "", lq_rise, prior="yes"),
+        Variant("lq_moderate", "long_qt", "QTc 468-495 ms", True, "", lq_moderate, tier_at_most=3),
+        Variant("lq_high", "long_qt", "QTc above 500 ms", True, "", lq_high, tier_at_most=1),
+        Variant("lq_low_k", "long_qt", "QTc 470-520 ms with K < 3.5 mmol/L", True, "", lq_low_k, tier_at_most=2),
+        Variant("lq_low_mg", "long_qt", "QTc 470-520 ms with Mg < 0.70 mmol/L", True, "", lq_low_mg, tier_at_most=2),
+        Variant("lq_rise", "long_qt", "QTc rise > 60 ms vs prior ECG", True, "", lq_rise, prior="yes", tier_at_most=2),
         Variant("lq_drug_woman", "long_qt", "woman >= 68 y, QTc 468-500 ms, QT-prolonging drug in 24 h",
-                True, "", lq_drug_woman, sex="F", age=(70, 90)),
+                True, "", lq_drug_woman, sex="F", age=(70, 90), tier_at_most=2),
         Variant("lq_man_boundary", "long_qt", "man, QTc 452-458 ms (at or above the male limit)",
-                True, "", lq_man_boundary, sex="M"),
+                True, "", lq_man_boundary, sex="M", tier_at_most=3),
     ],
     "st_deviation": [
-        Variant("st_inferior", "st_deviation", "inferior with reciprocal aVL", True, "inferior", st_inferior),
-        Variant("st_anterior", "st_deviation", "anterior V1-V4", True, "anterior", st_anterior),
-        Variant("st_lateral", "st_deviation", "lateral with reciprocal III/aVF", True, "lateral", st_lateral),
+        Variant("st_inferior", "st_deviation", "inferior with reciprocal aVL", True, "inferior", st_inferior, tier_at_most=1),
+        Variant("st_anterior", "st_deviation", "anterior V1-V4", True, "anterior", st_anterior, tier_at_most=1),
+        Variant("st_lateral", "st_deviation", "lateral with reciprocal III/aVF", True, "lateral", st_lateral, tier_at_most=1),
         Variant("st_inferolateral", "st_deviation", "inferior and lateral V5-V6", True, "inferior,lateral",
-                st_inferolateral),
+                st_inferolateral, tier_at_most=1),
         Variant("st_posterior", "st_deviation", "posterior: ST depression V1-V3 with dominant R", True,
-                "posterior", st_posterior),
+                "posterior", st_posterior, tier_at_most=2),
         Variant("st_right_ventricular", "st_deviation", "inferior with V3R/V4R elevation", True,
-                "inferior,right_ventricular", st_right_ventricular),
-        Variant("st_avr", "st_deviation", "avr pattern: aVR elevation with widespread depression", True, "", st_avr),
+                "inferior,right_ventricular", st_right_ventricular, tier_at_most=1),
+        Variant("st_avr", "st_deviation", "avr pattern: aVR elevation with widespread depression", True, "", st_avr, tier_at_most=2),
         Variant("st_pericarditis", "st_deviation", "pericarditis-like diffuse elevation without reciprocal depression",
-                True, "", st_pericarditis),
+                True, "anterior,inferior,lateral", st_pericarditis, tier_at_most=2),
         Variant("st_lbbb_discordant", "st_deviation", "lbbb with discordant ST only (Sgarbossa-negative)",
                 False, "", st_lbbb_discordant),
         Variant("st_lbbb_concordant", "st_deviation", "lbbb with concordant lateral elevation (Sgarbossa-positive)",
-                True, "lateral", st_lbbb_concordant),
+                True, "lateral", st_lbbb_concordant, tier_at_most=1),
         Variant("st_persistent", "st_deviation", "anterior elevation already on the prior ECG", True, "anterior",
-                st_persistent, prior="yes", prior_detail="prior ECG of a persistent anterior elevation"),
+                st_persistent, prior="yes", prior_detail="prior ECG of a persistent anterior elevation", tier_at_most=2),
+        Variant("st_wraparound", "st_deviation", "wrap-around anterior elevation V1-V6 with inferior leads, no reciprocal",
+                True, "anterior,inferior,lateral,septal", st_wraparound, tier_at_most=2),
+        Variant("st_posterior_no_tall_r", "st_deviation", "posterior: ST depression V1-V3 without dominant R",
+                True, "posterior", st_posterior_no_tall_r, tier_at_most=2),
+        Variant("st_depression_alone", "st_deviation", "ST depression V3-V6 without elevation", True, "",
+                st_depression_alone, tier_at_most=3),
+        Variant("st_inferior_lvh", "st_deviation", "inferior elevation with LVH voltage", True, "inferior",
+                st_inferior_lvh, tier_at_most=2),
+        Variant("st_persistent_recent", "st_deviation", "inferior elevation also on an ECG 2-12 h earlier", True,
+                "inferior", st_persistent_recent, tier_at_most=1, prior="recent",
+                prior_detail="earlier ECG of a persistent inferior elevation"),
+        Variant("st_lbbb_smith", "st_deviation", "lbbb with excessively discordant ST in V2-V3 (Smith-modified positive)",
+                True, "anterior,septal", st_lbbb_smith, tier_at_most=1),
     ],
     "normal": [
         Variant("c_k_below", "normal", "K 5.1-5.4, below the 5.5 band", False, "", c_k_below),
@@ -1067,7 +1147,7 @@ def generate(out_dir, patients: int = 2000, days: int = 30, end: str = "2026-11-
     counts = {}
 
     # ------------------------------------------------------------ ECG table
-    # Fridericia: QT = QTc * RR^(1/3) with RR in seconds (REFERENCES.md, FRID-1920).
+    # Fridericia: QT = QTc * RR^(1/3) with RR in seconds (FRID-1920, docs/references.md).
     rr = np.round(60000.0 / b.hr)
     qt = np.round(b.qtc * (rr / 1000.0) ** (1 / 3))
     rr_out = np.where(rng.random(rr.size) < 0.2, np.nan, rr)    # the loader derives the missing ones
@@ -1181,7 +1261,10 @@ def generate(out_dir, patients: int = 2000, days: int = 30, end: str = "2026-11-
 
         # Naive timestamps: a second lab file on the last night whose timestamps carry no time zone.
         # Europe/London is UTC+0 in late November, so a converting loader gets the same instants.
-        p_naive = b.e_pidx[int(rng.choice(on_last))]
+        # Not the duplicated ECG's patient: with every copy of that ECG rejected the run reads
+        # none of that patient's labs, and the plant would go unexercised.
+        others = on_last[b.e_pidx[on_last] != b.e_pidx[dup]]
+        p_naive = b.e_pidx[int(rng.choice(others if others.size else on_last))]
         t0 = int(b.clock(np.array([days - 1]), 1)[0])
         n_naive = 3
         naive_keys = [f"{RESULT_PREFIX}{i:0{max(8, len(str(n_lab + 10)))}d}" for i in range(n_lab + 1, n_lab + 1 + n_naive)]
@@ -1227,7 +1310,8 @@ def generate(out_dir, patients: int = 2000, days: int = 30, end: str = "2026-11-
                 case_rows.append({
                     "record": "case", "kind": v.kind, "patient_id": pid[b.e_pidx[r]], "ecg_id": ecg_id_of_row[r],
                     "date": _date(b.e_t[r]), "detail": detail + b.suffix[r],
-                    "expect_finding": "true" if v.expect_finding else "false", "expect_territories": v.territories})
+                    "expect_finding": "true" if v.expect_finding else "false", "expect_territories": v.territories,
+                    "expect_tier_at_most": str(v.tier_at_most) if v.expect_finding and detail == v.detail else ""})
     case_rows.sort(key=lambda c: (KINDS.index(c["kind"]), c["ecg_id"]))
     counts["planted_cases"] = {k: int(per_kind[k]) for k in KINDS}
     counts["planted_bad_rows"] = len(bad_records)

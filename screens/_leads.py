@@ -1,9 +1,13 @@
 """Lead names, contiguity and the long-to-wide turn of the ecg_lead table.
 
-Contiguity (UDMI-2018; Cabrera order is common practice):
-  limb-lead circle   aVL - I - (-aVR) - II - aVF - III     (no wrap from III back to aVL)
-  precordial chain   V4R - V3R - V1 - V2 - V3 - V4 - V5 - V6 - V7 - V8 - V9
--aVR is aVR with its sign inverted, so ST depression in aVR is elevation in -aVR.
+Contiguity decides whether two leads that meet a cut point make a finding [UDMI-2018]:
+  lead groups        inferior II, III, aVF (any two of them are contiguous); lateral/apical I, aVL;
+                     posterior V7, V8, V9 (any two); right-sided V3R, V4R
+  precordial chain   V4R - V3R - V1 - V2 - V3 - V4 - V5 - V6 - V7 - V8 - V9: neighbours only
+                     (V3R-V1 and V6-V7 as anatomic neighbours are a local reading)
+The Cabrera circle aVL - I - (-aVR) - II - aVF - III is supporting evidence only: -aVR (aVR with
+its sign inverted, so ST depression in aVR is elevation in -aVR) never makes a pair on its own,
+and is recorded beside a finding when it agrees with it (common practice).
 """
 
 from __future__ import annotations
@@ -22,17 +26,37 @@ POSTERIOR = ["V7", "V8", "V9"]
 STANDARD = LIMB + PRECORDIAL
 ALL_LEADS = STANDARD + RIGHT + POSTERIOR
 
-LIMB_CIRCLE = ["aVL", "I", "-aVR", "II", "aVF", "III"]
+INFERIOR = ["II", "III", "aVF"]
+HIGH_LATERAL = ["I", "aVL"]
+# Lead groups of UDMI-2018: any two leads of one group are contiguous.
+LEAD_GROUPS = [INFERIOR, HIGH_LATERAL, POSTERIOR, RIGHT]
 PRECORDIAL_CHAIN = ["V4R", "V3R", "V1", "V2", "V3", "V4", "V5", "V6", "V7", "V8", "V9"]
+CABRERA_CIRCLE = ["aVL", "I", "-aVR", "II", "aVF", "III"]   # supporting evidence only
 # The order leads are named in summaries.
 DISPLAY_ORDER = ["I", "II", "III", "aVR", "-aVR", "aVL", "aVF", *PRECORDIAL, *RIGHT, *POSTERIOR]
 
 
 def pairs(chain: Sequence[str]) -> list[tuple[str, str]]:
+    """Neighbouring pairs of a chain of leads."""
     return [(a, b) for a, b in zip(chain[:-1], chain[1:])]
 
 
-CONTIGUOUS_PAIRS = pairs(LIMB_CIRCLE) + pairs(PRECORDIAL_CHAIN)
+def group_pairs(group: Sequence[str]) -> list[tuple[str, str]]:
+    """Every pair of a lead group (any two of its leads are contiguous)."""
+    return [(a, b) for i, a in enumerate(group) for b in group[i + 1:]]
+
+
+def _unique(pair_list: list[tuple[str, str]]) -> list[tuple[str, str]]:
+    seen: set[frozenset] = set()
+    out = []
+    for a, b in pair_list:
+        if frozenset((a, b)) not in seen:
+            seen.add(frozenset((a, b)))
+            out.append((a, b))
+    return out
+
+
+CONTIGUOUS_PAIRS = _unique([p for g in LEAD_GROUPS for p in group_pairs(g)] + pairs(PRECORDIAL_CHAIN))
 
 
 def wide(leads: pd.DataFrame, ecg_ids: pd.Series | np.ndarray, columns: Sequence[str]) -> dict[str, pd.DataFrame]:

@@ -2,7 +2,8 @@
 
 What it flags
     - prolonged QTc: >= 450 ms men, >= 460 ms women (AHA-2009-IV);
-    - high risk: QTc > 500 ms, or a rise of > 60 ms from the prior ECG (AHA-2010-TDP);
+    - high risk: QTc > 500 ms, or a rise of > 60 ms from the prior ECG (AHA-2010-TDP; a rise
+      counts whether or not this QTc is itself prolonged, as Drew 2010 words it);
     - (setting report_not_evaluable) an ECG with no usable QT, or neither RR nor heart rate:
       a tier-4 "not evaluable" finding, never a silent pass.
 
@@ -17,18 +18,36 @@ QT correction (RR in s, QT in ms), all four always in the evidence:
     With QRS >= 120 ms the QT holds a long depolarisation: we correct the Bogossian modified
     QT = QT - 0.485 * QRS [BOGOSSIAN-2014] and say so; JT = QT - QRS is in the evidence too,
     but it is not compared with QTc limits (it has its own, which we do not ship).
+    Bogossian derived the formula in left bundle branch block (LBBB made by right-ventricular
+    pacing in 60 patients with narrow QRS); we apply it to every QRS at or above the qrs_wide
+    cut point (RBBB, paced, IVCD too), which is an extrapolation. It is a step, not a slope:
+    at QRS = 120 ms it subtracts 0.485 * 120 = 58.2 ms from QT, so between QRS 119 and 120 ms
+    the QTc drops by 58.2 ms / RR^(1/3) with Fridericia (58.2 ms at 60 bpm, about 55 ms at
+    50 bpm, about 63 ms at 75 bpm; 58.2 ms at any rate with Framingham and Hodges, 58.2 ms /
+    RR^(1/2) with Bazett). A QTc near a limit with QRS near 120 ms is therefore fragile, and
+    the caveat gives the unadjusted QTc beside the adjusted one.
     The rise compares like with like: the prior ECG's QTc by the same formula and adjustment.
 
 Risk modifiers (any one counts)
     K < 3.5 mmol/L, Mg < 0.70 mmol/L, total Ca < 2.10 mmol/L (PRACTICE), heart rate < 50 bpm,
     female sex, age >= 68 y (TISDALE-2013), a QT-prolonging drug or a loop diuretic given in
     the previous 24 h (the site's own drug classes, site config [drugs]).
+    An input that is missing (no K, Mg or Ca in the lab window, sex or age not recorded, no
+    medication data: qt_drug_count_24h / loop_diuretic_24h null) leaves its modifier UNKNOWN,
+    never absent: the summary names what was not measured and a caveat says the tier counts
+    only the modifiers that could be assessed. "No risk modifier" is said only when every
+    input was present. An unknown modifier does not raise the tier (local choice: medication
+    data are missing for whole sites, and lifting every such ECG would flood tier 2).
 
 Tiers (1 most urgent)
-    1  QTc > 500 ms with a modifier
-    2  QTc > 500 ms, or a rise > 60 ms from the prior ECG
-    3  prolonged with a modifier
-    4  prolonged alone; not evaluable
+    1  QTc > 500 ms, whatever the modifiers (AHA-2010-TDP: high risk of torsade)
+    2  a rise > 60 ms from the prior ECG (AHA-2010-TDP); or prolonged with a modifier
+    3  prolonged alone
+    4  not evaluable (setting report_not_evaluable)
+    Tier is monotone in QTc: a higher QTc (all else equal) never gives a less urgent tier,
+    since each mask above only grows with QTc and the most urgent one is QTc alone.
+    Before 1.1.0: 1 QTc > 500 with a modifier; 2 QTc > 500 or rise > 60; 3 prolonged with a
+    modifier; 4 prolonged alone or not evaluable.
 
 Tisdale et al. 2013 score, from the inputs present [TISDALE-2013]
     age >= 68 y 1; female 1; loop diuretic 1; K <= 3.5 mmol/L 2; QTc >= 450 ms 2; acute MI 2;
@@ -43,11 +62,15 @@ Tisdale et al. 2013 score, from the inputs present [TISDALE-2013]
     REFERENCES.md and calculators reproduce, uses ">=" / "<=" and is what we follow.)
 
 Unknown sex: the men's limit (450 ms), the more sensitive, with a caveat; the Tisdale female
-item is then missing. Unknown age: the Tisdale age item is missing; the age modifier is unmet.
+item is then missing and the female modifier not assessed. Unknown age: the Tisdale age item
+is missing and the age modifier not assessed (both named in the summary and a caveat).
 
 Caveats: heart rate outside 50-100 bpm (correction unreliable, PRACTICE); irregular rhythm
 suspected (no PR, and the machine's rate and mean RR disagree by > 10 %, a LOCAL proxy since
-the lake holds no beat-to-beat RR); wide QRS (QT adjusted); paced rhythm; unknown sex.
+the lake holds no beat-to-beat RR); wide QRS (QT adjusted, derived in LBBB, step at the cut
+point); paced rhythm; unknown sex; risk modifiers not assessed for lack of input. Every number
+in a summary or caveat is formatted from the threshold actually applied (a site override
+changes the text with the rule).
 
 score_parts
     severity       0.7 * max((QTc - limit) / 100 ms, (rise - 60) / 60 ms) clipped to 0..1
@@ -70,7 +93,8 @@ Sources (citations in screens/rules.toml [sources])
     SAGIE-1992      Sagie A, Larson MG, Goldberg RJ, et al. Am J Cardiol 1992;70:797-801.
     HODGES-1983     Hodges M, Salerno D, Erlien D. J Am Coll Cardiol 1983;1:694 (abstract).
     BOGOSSIAN-2014  Bogossian H, Frommeyer G, Ninios I, et al. Heart Rhythm 2014;11:2273-2277
-                    (coefficient 0.485 from memory).
+                    (coefficient 0.485 = mean of 48.3 % and 48.8 % in the abstract, checked
+                    against the abstract only; derived in paced LBBB).
     TISDALE-2013    Tisdale JE, Jaynes HA, Kingery JR, et al. Circ Cardiovasc Qual Outcomes
                     2013;6:479-487 (points checked against secondary calculator pages).
 """
@@ -119,18 +143,68 @@ TISDALE_POINTS = {
 }
 TISDALE_NOT_IN_LAKE = ("acute_mi", "sepsis", "heart_failure")
 
-CAVEAT_RATE = "Heart rate {hr} bpm is outside 50-100 bpm, where rate correction of QT is reliable; read the measured QT too."
+# Caveat texts. Every number in them is filled in from the threshold applied (see _caveat_texts),
+# so a site override never leaves the text contradicting the rule.
+CAVEAT_RATE = (
+    "Heart rate {hr} bpm is outside {low}-{high} bpm, where rate correction of QT is reliable; "
+    "read the measured QT too."
+)
 CAVEAT_IRREGULAR = (
-    "No PR interval and the rate and mean RR disagree: an irregular rhythm (e.g. atrial fibrillation) is "
-    "suspected; a QTc from a mean RR is unreliable."
+    "No PR interval and the rate and mean RR disagree by more than {pct} %: an irregular rhythm "
+    "(e.g. atrial fibrillation) is suspected; a QTc from a mean RR is unreliable."
 )
 CAVEAT_WIDE = (
-    "QRS {qrs} ms: QT adjusted for the wide QRS by the Bogossian modified QT (QT - 0.485 x QRS), "
-    "derived in left bundle branch block."
+    "QRS {qrs} ms (at or above {wide} ms): QT adjusted for the wide QRS by the Bogossian modified QT "
+    "(QT - {factor} x QRS), a formula derived in left bundle branch block; here it subtracts {sub} ms "
+    "from QT. The adjustment starts as a step at QRS {wide} ms ({step} ms off QT). Unadjusted QTc {raw} ms."
 )
 CAVEAT_PACED = "Paced rhythm: the QT includes paced depolarisation."
-CAVEAT_SEX_UNKNOWN = "Sex unknown: the men's limit (450 ms), the more sensitive, was used."
+CAVEAT_SEX_UNKNOWN = "Sex unknown: the men's limit ({limit} ms), the more sensitive, was used."
 CAVEAT_NOT_EVALUABLE = "QTc not evaluable: {what} missing."
+CAVEAT_MODIFIERS_UNKNOWN = "Not every risk modifier could be assessed ({what}); the tier counts only the modifiers assessed."
+CAVEAT_MODIFIERS_COULD_RAISE = " An unassessed modifier, if present, would make this finding tier {tier}."
+
+# Tiers (module docstring): named so that tests and code read the same constant.
+TIER_HIGH_QTC = 1
+TIER_RISE_OR_MODIFIER = 2
+TIER_PROLONGED = 3
+TIER_NOT_EVALUABLE = 4
+
+# Modifier inputs, in summary order: (modifier key, the words for its input, its group).
+MODIFIER_INPUTS = (
+    ("k_low", "K", "lab"),
+    ("mg_low", "Mg", "lab"),
+    ("ca_low", "Ca", "lab"),
+    ("bradycardia", "heart rate", "record"),
+    ("female", "sex", "record"),
+    ("age_older", "age", "record"),
+    ("qt_drug", "QT-prolonging drugs", "medication"),
+    ("loop_diuretic", "loop diuretics", "medication"),
+)
+ALL_MODIFIERS_WORDS = "no risk modifier among K, Mg, Ca, heart rate, sex, age, drugs"
+
+
+def _limit(x: float) -> str:
+    """A threshold for a text, as configured (450 -> "450", a site's 45.5 -> "45.5"; never rounded)."""
+    return f"{float(x):g}"
+
+
+def _unknown_words(unknown: list[str]) -> list[str]:
+    """Plain words for the modifier inputs missing on one row: ["not measured: K, Mg", "no medication data"]."""
+    by_key = {key: (word, group) for key, word, group in MODIFIER_INPUTS}
+    labs = [by_key[k][0] for k in unknown if by_key[k][1] == "lab"]
+    record = [by_key[k][0] for k in unknown if by_key[k][1] == "record"]
+    meds = [by_key[k][0] for k in unknown if by_key[k][1] == "medication"]
+    out = []
+    if labs:
+        out.append("not measured: " + ", ".join(labs))
+    if record:
+        out.append("not recorded: " + ", ".join(record))
+    if len(meds) == 2:
+        out.append("no medication data")
+    elif meds:
+        out.append(f"no data on {meds[0]}")
+    return out
 
 
 def qtc_all(qt_ms: np.ndarray, rr_ms: np.ndarray) -> dict[str, np.ndarray]:
@@ -218,12 +292,24 @@ def screen_long_qt(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | No
     mods = np.column_stack(list(mod.values()))
     n_mods = mods.sum(axis=1)
     any_mod = n_mods > 0
+    # Whether each modifier's input is present: a missing input is unknown, never "absent".
+    mod_known = {
+        "k_low": ~np.isnan(k),
+        "mg_low": ~np.isnan(mg),
+        "ca_low": ~np.isnan(ca),
+        "bradycardia": ~np.isnan(hr),
+        "female": ~sex_unknown,
+        "age_older": ~np.isnan(age),
+        "qt_drug": ~np.isnan(drugs),
+        "loop_diuretic": loop_known,
+    }
 
     evaluable = ~np.isnan(decide)
     report_ne = bool(r.setting("report_not_evaluable"))
+    # The most urgent tier is QTc alone [AHA-2010-TDP], so tier stays monotone in QTc.
     tier = np.select(
-        [high & any_mod, high | rose, prolonged & any_mod, prolonged, ~evaluable & report_ne],
-        [1, 2, 3, 4, 4],
+        [high, rose | (prolonged & any_mod), prolonged, ~evaluable & report_ne],
+        [TIER_HIGH_QTC, TIER_RISE_OR_MODIFIER, TIER_PROLONGED, TIER_NOT_EVALUABLE],
         NO_FINDING,
     )
 
@@ -262,6 +348,10 @@ def screen_long_qt(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | No
     prior_ids = text(aligned, "prior_ecg_id")
     rows = aligned.iloc[hit]
     fname = FORMULA_NAMES[formula]
+    # Numbers for the texts, read from the rules applied (a site override changes the text too).
+    high_limit, rise_limit = r["qtc_high_risk"].value, r["qtc_rise"].value
+    rate_low, rate_high = r["hr_correction_low"].value, r["hr_correction_high"].value
+    mismatch_limit, wide_limit = r["rr_hr_mismatch"].value, r["qrs_wide"].value
     parts, summaries, evidence, caveats = [], [], [], []
     for i in hit:
         mod_words = []
@@ -281,6 +371,7 @@ def screen_long_qt(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | No
             mod_words.append(f"{int(drugs[i])} QT-prolonging drug(s) in 24 h")
         if mod["loop_diuretic"][i]:
             mod_words.append("loop diuretic in 24 h")
+        unknown_mods = [key for key, _, _ in MODIFIER_INPUTS if not mod_known[key][i]]
 
         missing = [name for name, (_, known) in t_items.items() if not known[i]] + list(TISDALE_NOT_IN_LAKE)
         pts = int(t_points[i])
@@ -310,25 +401,49 @@ def screen_long_qt(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | No
             qt_words = f"QT {fmt(qt[i])} ms" if not wide[i] else f"Bogossian-adjusted QT {fmt(qt_used[i])} ms, QRS {fmt(qrs[i])} ms"
             words = [f"QTc {fmt(decide[i])} ms ({fname}; {qt_words}, heart rate {fmt(hr[i])} bpm)"]
             if high[i]:
-                words[0] += f", above {fmt(r['qtc_high_risk'].value)} ms"
+                words[0] += f", above {_limit(high_limit)} ms"
             elif prolonged[i]:
-                words[0] += f", at or above the {fmt(limit[i])} ms limit"
+                words[0] += f", at or above the {_limit(limit[i])} ms limit"
             if not np.isnan(prior_decide[i]):
-                words.append(f"prior {fmt(prior_decide[i])} ms ({'+' if rise[i] >= 0 else ''}{fmt(rise[i])} ms)")
-            words.append("modifiers: " + ", ".join(mod_words) if mod_words else "no risk modifiers")
+                prior_words = f"prior {fmt(prior_decide[i])} ms ({'+' if rise[i] >= 0 else ''}{fmt(rise[i])} ms)"
+                if rose[i]:
+                    prior_words += f", a rise of more than {_limit(rise_limit)} ms"
+                words.append(prior_words)
+            unknown_words = _unknown_words(unknown_mods)
+            if mod_words:
+                words.append("modifiers: " + ", ".join(mod_words))
+            elif unknown_mods:
+                words.append("modifiers: none among the inputs present")
+            else:
+                words.append(ALL_MODIFIERS_WORDS)
+            words.extend(unknown_words)
             words.append(f"Tisdale {pts} ({'partial, ' if missing else ''}{band})")
             summaries.append("; ".join(words))
             cav = []
             if rate_odd[i]:
-                cav.append(CAVEAT_RATE.format(hr=fmt(hr[i])))
+                cav.append(CAVEAT_RATE.format(hr=fmt(hr[i]), low=_limit(rate_low), high=_limit(rate_high)))
             if irregular[i]:
-                cav.append(CAVEAT_IRREGULAR)
+                cav.append(CAVEAT_IRREGULAR.format(pct=_limit(mismatch_limit)))
             if wide[i]:
-                cav.append(CAVEAT_WIDE.format(qrs=fmt(qrs[i])))
+                cav.append(
+                    CAVEAT_WIDE.format(
+                        qrs=fmt(qrs[i]),
+                        wide=_limit(wide_limit),
+                        factor=f"{BOGOSSIAN_QRS_FACTOR:g}",
+                        sub=fmt(BOGOSSIAN_QRS_FACTOR * qrs[i], 1),
+                        step=fmt(BOGOSSIAN_QRS_FACTOR * wide_limit, 1),
+                        raw=fmt(qtc_raw[formula][i]),
+                    )
+                )
             if paced[i]:
                 cav.append(CAVEAT_PACED)
             if sex_unknown[i]:
-                cav.append(CAVEAT_SEX_UNKNOWN)
+                cav.append(CAVEAT_SEX_UNKNOWN.format(limit=_limit(r["qtc_prolonged_m"].value)))
+            if unknown_mods:
+                words_unknown = CAVEAT_MODIFIERS_UNKNOWN.format(what="; ".join(unknown_words))
+                if tier[i] == TIER_PROLONGED:  # the only tier a modifier can still change
+                    words_unknown += CAVEAT_MODIFIERS_COULD_RAISE.format(tier=TIER_RISE_OR_MODIFIER)
+                cav.append(words_unknown)
             caveats.append(cav)
 
         rules_fired = fired(
@@ -377,6 +492,7 @@ def screen_long_qt(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | No
                     "qt_drug_count_24h": drugs[i],
                     "loop_diuretic_24h": bool(loop[i]) if loop_known[i] else None,
                     "modifiers": [name for name in mod if mod[name][i]],
+                    "modifiers_not_assessed": unknown_mods,
                 },
                 "tisdale": tisdale,
                 "rules": rules_fired,

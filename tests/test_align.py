@@ -100,3 +100,60 @@ def test_without_a_medication_table_drug_exposure_is_unknown_not_false():
 def test_missing_patient_keeps_the_ecg_with_unknown_age_and_sex():
     got = run(ecg=[ecg_row(patient_id="ghost", acquired_at=AT)])
     assert len(got) == 1 and pd.isna(got["sex"].iloc[0]) and pd.isna(got["age_years"].iloc[0])
+
+
+# ---------------------------------------------------------------------------------------------
+# Rejected potassium (k_rejected_reason): "measured but rejected" is not "none measured".
+
+def rejected(result_id, collected_at, reason, patient_id="P1", analyte="2823-3"):
+    return dict(result_id=result_id, patient_id=patient_id, collected_at=ts(collected_at) if collected_at else pd.NaT,
+                analyte=analyte, reason=reason)
+
+
+def run_with_rejects(labs=(), rejects=(), ecg=None):
+    ecg = pd.DataFrame(ecg or [ecg_row(acquired_at=AT)])
+    labs = pd.DataFrame(list(labs) or [lab_row("none", patient_id="nobody")])
+    patients = pd.DataFrame([patient_row()])
+    patients["birth_date"] = pd.to_datetime(patients["birth_date"]).dt.tz_localize("UTC")
+    lab_rejects = pd.DataFrame(list(rejects)) if rejects else None
+    return align(ecg, ecg, labs, patients, None, SETTINGS, lab_rejects=lab_rejects)
+
+
+@pytest.mark.parametrize("collected, found", [
+    ("2026-11-28T10:00:00Z", True),    # exactly lab_before_h (24 h) before: inside, as for accepted labs
+    ("2026-11-28T09:59:00Z", False),   # a minute more: outside
+    ("2026-11-29T16:00:00Z", True),    # exactly lab_after_h (6 h) after: inside
+    ("2026-11-29T16:01:00Z", False),   # a minute more: outside
+])
+def test_rejected_potassium_window_edges_are_the_lab_window(collected, found):
+    got = run_with_rejects(rejects=[rejected("R", collected, "quality:lab_potassium_plausible")])
+    value = got["k_rejected_reason"].iloc[0]
+    assert (None if pd.isna(value) else value) == ("quality:lab_potassium_plausible" if found else None)
+    assert pd.isna(got["k_mmol_l"].iloc[0])
+
+
+def test_the_latest_rejected_potassium_gives_the_reason_and_ties_go_to_the_greatest_id():
+    got = run_with_rejects(rejects=[rejected("a", "2026-11-29T08:00:00Z", "impossible_value"),
+                                    rejected("b", "2026-11-29T12:00:00Z", "quality:lab_potassium_plausible"),
+                                    rejected("c", "2026-11-29T12:00:00Z", "unknown_unit")])
+    assert got["k_rejected_reason"].iloc[0] == "unknown_unit"
+
+
+def test_a_rejected_potassium_is_ignored_when_one_was_accepted():
+    got = run_with_rejects(labs=[lab_row("ok", collected_at="2026-11-29T09:00:00Z", value=5.0)],
+                           rejects=[rejected("bad", "2026-11-29T09:30:00Z", "impossible_value")])
+    assert got["k_mmol_l"].iloc[0] == 5.0 and pd.isna(got["k_rejected_reason"].iloc[0])
+
+
+def test_rejects_of_other_analytes_patients_or_unplaceable_rows_do_not_count():
+    got = run_with_rejects(rejects=[
+        rejected("mg", "2026-11-29T09:00:00Z", "impossible_value", analyte="19123-9"),   # magnesium
+        rejected("other", "2026-11-29T09:00:00Z", "impossible_value", patient_id="P2"),  # another patient
+        rejected("no-time", None, "unparseable_timestamp"),                              # cannot be placed
+    ])
+    assert pd.isna(got["k_rejected_reason"].iloc[0])
+
+
+def test_without_rejects_the_column_is_there_and_null():
+    got = run()
+    assert "k_rejected_reason" in got.columns and got["k_rejected_reason"].isna().all()

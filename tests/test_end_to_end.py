@@ -38,7 +38,7 @@ EXPECTED_COLUMNS = ["rank", "item_id", "screen", "tier", "ecg_id"]
 BACKFILL = ("2026-10-31T00:00:00Z", "2026-11-30T00:00:00Z")
 LAST_NIGHT = ("2026-11-29T00:00:00Z", "2026-11-30T00:00:00Z")
 
-# The worklist contract columns (the worklist issue; pipeline/worklist.py).
+# The worklist contract columns (pipeline/worklist.py).
 WORKLIST_COLUMNS = ["item_id", "rank", "tier", "screen", "patient_id", "ecg_id", "ecg_at", "score", "summary",
                     "evidence", "caveats", "territories", "rule_version", "run_id", "first_flagged_at", "status",
                     "last_updated_at"]
@@ -128,7 +128,7 @@ def _pattern(evidence: str) -> str:
 
 def test_every_planted_case_expected_to_be_found_is_found_by_its_screen_with_its_territories(backfill, cases):
     want = cases[(cases["expect_finding"] == "true") & (cases["kind"] != "normal")]
-    assert len(want) == 240   # 80 + 80 + 87 planted rows, less 7 LBBB-discordant controls (_planted.csv)
+    assert len(want) == 244   # 80 + 80 + 89 planted rows (9 of them prior ECGs), less 5 LBBB-discordant controls
     got = want.merge(backfill.findings, left_on=["ecg_id", "kind"], right_on=["ecg_id", "screen"], how="left")
     missing = got[got["screen"].isna()]
     assert missing[["kind", "detail"]].values.tolist() == []
@@ -137,6 +137,20 @@ def test_every_planted_case_expected_to_be_found_is_found_by_its_screen_with_its
     short = [(r.detail, r.expect_territories, r.territories) for r in with_terr.itertuples()
              if not set(r.expect_territories.split(",")) <= set(r.territories.split(","))]
     assert short == []
+
+
+def test_every_planted_case_is_found_at_its_intended_tier_or_more_urgent(backfill, cases):
+    # The tier each planted pattern must reach (pipeline/samplegen.py, from the tier policy of
+    # docs/prioritisation.md): a STEMI pattern or an equivalent never sits below tier 2, K >= 6.0
+    # with ECG signs and a QTc above 500 ms are tier 1, a severe haemolysed potassium tier 2.
+    want = cases[cases["expect_tier_at_most"] != ""].assign(at_most=lambda d: d["expect_tier_at_most"].astype(int))
+    assert len(want) > 200
+    got = want.merge(backfill.findings, left_on=["ecg_id", "kind"], right_on=["ecg_id", "screen"], how="left")
+    late = got[got["tier"].isna() | (got["tier"] > got["at_most"])]
+    assert late[["detail", "at_most", "tier"]].values.tolist() == []
+    st = got[got["kind"] == "st_deviation"]
+    st_elev = st[st["evidence"].map(_pattern) == "st_elevation"]
+    assert len(st_elev) > 30 and st_elev["tier"].max() <= 2
 
 
 def test_planted_cases_expected_silent_get_no_finding_of_their_screen(backfill, cases):
@@ -171,7 +185,11 @@ def test_planted_hyperkalemia_with_a_normal_ecg_shows_no_ecg_sign(backfill, case
 
 @pytest.mark.parametrize("detail, pattern", [
     ("avr pattern", "avr_widespread_depression"),
-    ("pericarditis-like", "diffuse_elevation"),
+    ("pericarditis-like", "st_elevation"),     # a caveat on the elevation, never its own pattern
+    ("wrap-around anterior", "st_elevation"),
+    ("posterior: ST depression V1-V3 without", "posterior_depression"),
+    ("ST depression V3-V6", "st_depression"),
+    ("lbbb with excessively discordant", "lbbb_or_paced"),
     ("lbbb with concordant", "lbbb_or_paced"),
     ("anterior V1-V4", "st_elevation"),
     ("inferior with reciprocal", "st_elevation"),
@@ -302,8 +320,10 @@ def test_last_night_worklist_equals_the_reviewed_expected_list(last_night, cases
     """The last night's worklist on a fresh OUT, item by item, against tests/data/expected_last_night.csv.
 
     That file was written from the code and then checked by hand against sample_lake/_planted.csv:
-    its 32 items are exactly the 32 planted cases of 2026-11-29 with expect_finding = true, each
-    under its planted screen; none of the 7 near-miss or LBBB-discordant controls of that night.
+    its 38 items are the 39 planted cases of 2026-11-29 with expect_finding = true, each under its
+    planted screen and at its expect_tier_at_most or more urgent (the two ECGs of the persistent
+    inferior elevation, hours apart, fold into one item); none of the 8 near-miss or
+    LBBB-discordant controls of that night.
     A change of that file changes what a clinician sees first: it needs clinical review, with the
     reason in the commit message. Regenerate it (after a deliberate change of rules, ranking or
     the sample lake) with
@@ -316,7 +336,13 @@ def test_last_night_worklist_equals_the_reviewed_expected_list(last_night, cases
     pd.testing.assert_frame_equal(_expected_frame(last_night.worklist), expected[EXPECTED_COLUMNS])
     # The reviewed file itself still matches the ground truth.
     night = cases[(cases["date"] == "2026-11-29") & (cases["expect_finding"] == "true")]
-    assert sorted(zip(expected["ecg_id"], expected["screen"])) == sorted(zip(night["ecg_id"], night["kind"]))
+    listed = set(zip(expected["ecg_id"], expected["screen"]))
+    assert listed <= set(zip(night["ecg_id"], night["kind"]))
+    # A planted ECG not listed is folded into the item of the same patient and screen (one episode).
+    patient_of = dict(zip(night["ecg_id"], night["patient_id"]))
+    folded = night[~night["ecg_id"].isin(expected["ecg_id"])]
+    assert len(folded) == 1
+    assert set(zip(folded["patient_id"], folded["kind"])) <= {(patient_of[e], s) for e, s in listed}
 
 
 # ---------------------------------------------------------------------------------------------

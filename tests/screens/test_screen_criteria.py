@@ -39,9 +39,9 @@ def test_unknown_operator_is_refused():
 def test_shipped_rules_have_versions_and_every_source_is_cited():
     rules = load_rules()
     assert rules.versions() == {
-        "hyperkalemia": "hyperkalemia/1.0.1",
-        "long_qt": "long_qt/1.0.0",
-        "st_deviation": "st_deviation/1.0.1",
+        "hyperkalemia": "hyperkalemia/1.1.0",
+        "long_qt": "long_qt/1.1.0",
+        "st_deviation": "st_deviation/2.0.0",
     }
     for screen in rules.screens.values():
         for th in screen.thresholds.values():
@@ -66,9 +66,9 @@ def test_site_override_changes_value_source_and_version_but_not_operator():
     rules = load_rules({"long_qt": {"qtc_high_risk": 480}}, source_name="site.toml")
     th = rules["long_qt"]["qtc_high_risk"]
     assert (th.op, th.value, th.source) == (">", 480.0, "site: site.toml")
-    assert rules["long_qt"].version.startswith("long_qt/1.0.0+site.")
+    assert rules["long_qt"].version.startswith("long_qt/1.1.0+site.")
     # Other screens keep their published version.
-    assert rules["hyperkalemia"].version == "hyperkalemia/1.0.1"
+    assert rules["hyperkalemia"].version == "hyperkalemia/1.1.0"
 
 
 def test_different_overrides_give_different_versions_and_same_overrides_the_same():

@@ -124,5 +124,5 @@ def test_site_override_version_reaches_the_findings():
     rules = load_rules({"long_qt": {"qtc_high_risk": 480}}, source_name="site.toml")
     out = run_screens(aligned, leads, rules)
     qt = out[out["screen"] == "long_qt"]
-    assert qt["rule_version"].str.startswith("long_qt/1.0.0+site.").all()
+    assert qt["rule_version"].str.startswith("long_qt/1.1.0+site.").all()
     assert (out.loc[out["screen"] != "long_qt", "rule_version"].str.contains(r"\+")).sum() == 0
