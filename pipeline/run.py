@@ -246,15 +246,27 @@ def stage_quality(lake, out, start, end, config=None, settings: Settings | None 
     return summary
 
 
+def site_rules(settings: Settings):
+    """The shipped screen rules with the site's [rules.*] overrides. The ST screen's "old prior
+    ECG" limit follows the site's episode window ([windows] episode_h) unless the site sets
+    [rules.st_deviation] prior_old_h itself: an elevation inside one episode is persistent, not old."""
+    from screens.criteria import load_rules
+
+    overrides = {screen: dict(values) for screen, values in (settings.rules or {}).items()}
+    episode_h = float(settings.windows["episode_h"])
+    if episode_h != load_rules()["st_deviation"]["prior_old_h"].value:
+        overrides.setdefault("st_deviation", {}).setdefault("prior_old_h", episode_h)
+    return load_rules(overrides or None, source_name=settings.source)
+
+
 def stage_screen(out, start, end, config=None, settings: Settings | None = None) -> dict:
     """Run every registered screen over the aligned night; write findings.parquet."""
     from screens import run_screens
-    from screens.criteria import load_rules
 
     settings = settings or load_settings(config)
     lo, hi = interval(start, end)
     d = stage_dir(out, lo, hi)
-    rules = load_rules(settings.rules or None, source_name=settings.source)
+    rules = site_rules(settings)
     from pipeline.normalise import empty_table
     leads = [x for x in (read_stage(d, "ecg_lead"), read_stage(d, "prior_lead")) if x is not None]
     leads = pd.concat(leads, ignore_index=True) if leads else empty_table(c.ECG_LEAD)
@@ -271,10 +283,9 @@ def stage_worklist(out, start, end, config=None, db=None, settings: Settings | N
     """Fold findings into worklist items, upsert them into the database in one transaction, and
     write OUT/worklist.parquet (the database's ranked items) atomically."""
     from pipeline import store, worklist
-    from screens.criteria import load_rules
 
     settings = settings or load_settings(config)
-    rules = load_rules(settings.rules or None, source_name=settings.source)
+    rules = site_rules(settings)
     lo, hi = interval(start, end)
     d = stage_dir(out, lo, hi)
     findings = pd.read_parquet(d / "findings.parquet")
