@@ -25,7 +25,7 @@ def test_potassium_meq_per_litre_equals_mmol_per_litre():
 
 @pytest.mark.parametrize("mg_dl, expected_mmol_l", [
     (2.4305, 1.0),     # Mg molar mass 24.305 g/mol (IUPAC standard atomic weight): 24.305 mg/L = 1 mmol/L
-    (1.7, 0.6994),     # 17 mg/L / 24.305 = 0.6994 mmol/L (hypomagnesaemia cut-off, REFERENCES.md, practice)
+    (1.7, 0.6994),     # 17 mg/L / 24.305 = 0.6994 mmol/L (hypomagnesaemia cut-off, docs/references.md, practice)
 ])
 def test_magnesium_mg_per_dl_converts_by_molar_mass(mg_dl, expected_mmol_l):
     got = normalise_table(lab([mg_dl], ["mg/dL"], "19123-9"), c.LAB, DEFAULT).clean
@@ -56,7 +56,7 @@ def test_qt_and_qrs_given_in_seconds_become_milliseconds():
 
 @pytest.mark.parametrize("unit, given, expected_uv", [("mV", 1.2, 1200.0), ("mm", 3.0, 300.0)])
 def test_amplitudes_in_millivolts_or_millimetres_become_microvolts(unit, given, expected_uv):
-    # Standard calibration 10 mm/mV: 1 mm = 0.1 mV = 100 uV (REFERENCES.md, practice).
+    # Standard calibration 10 mm/mV: 1 mm = 0.1 mV = 100 uV (docs/references.md, practice).
     s = settings_from_dict({"units": {"ecg_lead": {"amplitude": unit}}})
     raw = pd.DataFrame(lead_rows())
     raw["t_amp_uv"] = given

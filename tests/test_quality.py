@@ -211,7 +211,7 @@ def test_lab_suite_checks_codes_units_ranges_and_times():
     lab.loc[60, "value"] = 3.1                             # Mg 0.2-3 mmol/L
     lab.loc[80, "value"] = 0.9                             # Ca 1.0-4.0 mmol/L
     lab.loc[81, "value"] = 4.0                             # at the limit: kept
-    lab.loc[5, "collected_at"] = RUN_END + pd.Timedelta(hours=5)        # inside the 6 h lab look-ahead (brief default lab_after_h)
+    lab.loc[5, "collected_at"] = RUN_END + pd.Timedelta(hours=5)        # inside the 6 h lab look-ahead (default lab_after_h)
     lab.loc[5, "resulted_at"] = RUN_END + pd.Timedelta(hours=6)
     lab.loc[6, "collected_at"] = RUN_END + pd.Timedelta(hours=7)        # beyond it
     lab.loc[6, "resulted_at"] = RUN_END + pd.Timedelta(hours=8)

@@ -17,8 +17,8 @@ from pipeline.samplegen import generate
 REPO = Path(__file__).resolve().parents[1]
 SAMPLE = REPO / "sample_lake"
 STANDARD_LEADS = ["I", "II", "III", "aVR", "aVL", "aVF", "V1", "V2", "V3", "V4", "V5", "V6"]
-ALLOWED_LEADS = set(STANDARD_LEADS) | {"V3R", "V4R", "V7", "V8", "V9"}   # the brief's lead list
-K, MG, CA, TROP = "2823-3", "19123-9", "17861-6", "89579-7"              # LOINC codes from the brief
+ALLOWED_LEADS = set(STANDARD_LEADS) | {"V3R", "V4R", "V7", "V8", "V9"}   # the contract's lead list
+K, MG, CA, TROP = "2823-3", "19123-9", "17861-6", "89579-7"              # LOINC codes of the sample site (docs/references.md)
 KNOWN_UNITS = {"mmol/L", "meq/L", "mg/dL", "g/dL", "ng/L"}
 
 
@@ -77,7 +77,7 @@ def test_committed_sample_lake_equals_a_fresh_default_generation(tmp_path):
 
 
 def test_committed_sample_lake_is_small():
-    # The brief keeps the committed sample under 5 MB.
+    # The committed sample stays under 5 MB (a small clone).
     total = sum(p.stat().st_size for p in SAMPLE.rglob("*") if p.is_file())
     assert total < 5_000_000
 
@@ -125,13 +125,13 @@ def test_lake_window_ids_leads_and_units(tables):
     assert ecg["acquired_at"].between(start, end, inclusive="left").all()
     assert lab["collected_at"].between(start, end, inclusive="left").all()
     gap_min = (lab["resulted_at"] - lab["collected_at"]).dt.total_seconds() / 60
-    assert gap_min.between(30, 121).all()        # the brief: resulted 30-120 min after collection
+    assert gap_min.between(30, 121).all()        # sample-lake design: resulted 30-120 min after collection
     assert ecg["ecg_id"].is_unique and lab["result_id"].is_unique
     per_ecg = leads[leads["lead"].isin(STANDARD_LEADS)].groupby("ecg_id")["lead"].nunique()
     assert (per_ecg == 12).all() and set(per_ecg.index) == set(ecg["ecg_id"])
-    assert 0.15 < ecg["rr_ms"].isna().mean() < 0.25                       # brief: about 20 % missing
+    assert 0.15 < ecg["rr_ms"].isna().mean() < 0.25                       # sample-lake design: about 20 % missing
     k = lab[lab["analyte"] == K]
-    assert 0.05 < (k["unit"] == "meq/L").mean() < 0.15                   # brief: about 10 % in meq/L
+    assert 0.05 < (k["unit"] == "meq/L").mean() < 0.15                   # sample-lake design: about 10 % in meq/L
     assert set(lab.loc[lab["analyte"].isin([MG, CA]), "unit"]) == {"mg/dL"}
     assert set(lab.loc[lab["analyte"] == TROP, "unit"]) == {"ng/L"}
 
@@ -145,12 +145,12 @@ def test_normal_patients_ecgs_are_inside_normal_ranges(tables, manifest):
     ecg = tables["ecg"][~tables["ecg"]["patient_id"].isin(_planted_patients(manifest))]
     assert len(ecg) > 500
     rr = ecg["rr_ms"].fillna(60000 / ecg["heart_rate_bpm"])
-    qtc = ecg["qt_ms"] / (rr / 1000) ** (1 / 3)                          # Fridericia (REFERENCES.md)
+    qtc = ecg["qt_ms"] / (rr / 1000) ** (1 / 3)                          # Fridericia (FRID-1920, docs/references.md)
     assert ecg["heart_rate_bpm"].between(55, 100).all()                  # practice; no bradycardia < 50
     assert ecg["pr_ms"].dropna().between(120, 200).all()                 # practice 120-200 ms
     assert 0 < ecg["pr_ms"].isna().mean() < 0.06                          # AF-like ECGs only
-    assert ecg["qrs_ms"].between(80, 110).all()                          # brief: 80-110 ms
-    assert qtc.between(390, 440).all()                                   # brief: 390-440 ms, below AHA-2009-IV 450/460
+    assert ecg["qrs_ms"].between(80, 110).all()                          # sample-lake design: 80-110 ms
+    assert qtc.between(390, 440).all()                                   # sample-lake design: 390-440 ms, below AHA-2009-IV 450/460
 
 
 def test_normal_patients_leads_are_inside_normal_ranges(tables, manifest):
@@ -195,7 +195,7 @@ def test_each_abnormal_kind_plants_3_to_5_percent_of_patients(manifest):
     cases = manifest[manifest["record"] == "case"]
     for kind in ("hyperkalemia", "long_qt", "st_deviation"):
         share = cases.loc[cases["kind"] == kind, "patient_id"].nunique() / 600
-        assert 0.03 <= share <= 0.05, kind                                # the brief: 3-5 % per kind
+        assert 0.03 <= share <= 0.05, kind                                # sample-lake design: 3-5 % per kind
     assert cases.groupby("patient_id")["kind"].nunique().max() == 1      # one kind per patient
 
 
@@ -206,7 +206,7 @@ def test_every_kind_has_cases_on_the_last_night(manifest):
 
 
 def _closest(ecg: pd.DataFrame, lab: pd.DataFrame, code: str) -> pd.Series:
-    """Closest result of `code` collected in [acquired_at - 24 h, acquired_at + 6 h] (brief's window)."""
+    """Closest result of `code` collected in [acquired_at - 24 h, acquired_at + 6 h] (the default lab window)."""
     m = ecg[["ecg_id", "patient_id", "acquired_at"]].merge(lab[lab["analyte"] == code], on="patient_id")
     off = (m["collected_at"] - m["acquired_at"]).dt.total_seconds() / 3600
     m = m[off.between(-24, 6)].assign(gap=off.abs())
@@ -238,7 +238,7 @@ def test_only_the_haemolysed_variant_reports_a_haemolysed_high_potassium(tables,
 
 
 def _drugs_24h_before(tables, ecg_ids, drugs):
-    """Distinct `drugs` given in [acquired_at - 24 h, acquired_at) per ECG (brief's medication window)."""
+    """Distinct `drugs` given in [acquired_at - 24 h, acquired_at) per ECG (the medication window)."""
     ecg = tables["ecg"][tables["ecg"]["ecg_id"].isin(ecg_ids)]
     m = ecg.merge(tables["medication"][tables["medication"]["drug"].isin(drugs)], on="patient_id")
     before = m["acquired_at"] - m["administered_at"]
