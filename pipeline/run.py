@@ -183,7 +183,8 @@ def stage_align(out, start, end, config=None, settings: Settings | None = None, 
     history = read_stage(d, "ecg_history")
     removed = set(pd.read_parquet(d / "ecg.parquet", columns=["ecg_id"])["ecg_id"]) - set(ecg["ecg_id"])
     history = history[~history["ecg_id"].isin(removed)]   # night ECGs the quality gate removed are no baseline
-    aligned = align(ecg, history, read_stage(d, "lab"), read_stage(d, "patient"), read_stage(d, "medication"), settings)
+    aligned = align(ecg, history, read_stage(d, "lab"), read_stage(d, "patient"), read_stage(d, "medication"), settings,
+                    lab_rejects=_gate_lab_rejects(d))
     write_parquet(aligned, d / "aligned.parquet")
     write_parquet(aligned, Path(out) / "aligned.parquet")
     prior_leads = 0
@@ -192,6 +193,21 @@ def stage_align(out, start, end, config=None, settings: Settings | None = None, 
     return {"aligned": len(aligned), "prior_lead_rows": prior_leads,
             "with_potassium": int(aligned["k_mmol_l"].notna().sum()),
             "with_prior_ecg": int(aligned["prior_ecg_id"].notna().sum())}
+
+
+def _gate_lab_rejects(d: Path) -> pd.DataFrame | None:
+    """Lab rows the quality gate rejected, placed by patient and time (from the loaded lab table),
+    so that the aligned table can say "a potassium was rejected" rather than "none measured".
+    None when the gate did not run. (Rows the loader rejected cannot be placed: their patient or
+    time may be what was wrong.)"""
+    path = d / "rejects_quality.parquet"
+    if not path.exists() or not (d / "lab.parquet").exists():
+        return None
+    rejects = pd.read_parquet(path, columns=["table", "row_key", "reason"])
+    rejects = rejects[rejects["table"] == "lab"]
+    lab = pd.read_parquet(d / "lab.parquet", columns=["result_id", "patient_id", "collected_at", "analyte"])
+    placed = lab.merge(rejects.rename(columns={"row_key": "result_id"})[["result_id", "reason"]], on="result_id")
+    return placed.drop_duplicates("result_id")
 
 
 def trailing_counts(lake, lo: pd.Timestamp, hi: pd.Timestamp, nights: int = 28) -> dict:

@@ -89,3 +89,30 @@ def test_validate_reports_rejects_over_the_whole_lake(tmp_path, capsys):
 def test_no_command_prints_help_and_exits_2(capsys):
     assert main([]) == 2
     assert "usage: cardiosieve" in capsys.readouterr().out
+
+
+def test_a_potassium_the_gate_rejected_is_not_reported_as_none_measured(tmp_path):
+    # K 11.0 mmol/L lies outside the gate's plausible range (pipeline/quality.py): the row is
+    # rejected, and the aligned ECG says so instead of "no potassium" (missing is not absent).
+    import json
+
+    import pandas as pd
+
+    # 24 other patients with a normal potassium keep the rejected row under the gate's 5 % limit.
+    others = [f"P{i}" for i in range(2, 26)]
+    lake = write_lake(tmp_path / "lake",
+                      ecg=[ecg_row("E1", "P1", qrs_ms=150.0, heart_rate_bpm=44.0)]
+                      + [ecg_row(f"E{p}", p) for p in others],
+                      labs=[lab_row("R1", "P1", value=11.0)] + [lab_row(f"R{p}", p, value=4.2) for p in others],
+                      patients=[patient_row(p) for p in ["P1", *others]])
+    out = tmp_path / "out"
+    assert main(["run", "--lake", str(lake), "--out", str(out), *ARGS]) == 0
+    aligned = pd.read_parquet(out / "aligned.parquet").set_index("ecg_id")
+    assert pd.isna(aligned.loc["E1", "k_mmol_l"])
+    assert aligned.loc["E1", "k_rejected_reason"] == "quality:lab_potassium_plausible"
+    assert aligned.drop(index="E1")["k_rejected_reason"].isna().all()
+    items = pd.read_parquet(out / "worklist.parquet")
+    hk = items[items["screen"] == "hyperkalemia"]
+    assert len(hk) == 1 and "rejected" in hk["summary"].iloc[0]
+    assert "No potassium in the lab window" not in hk["summary"].iloc[0]
+    assert any("rejected" in c for c in json.loads(hk["caveats"].iloc[0]))
