@@ -30,7 +30,7 @@ DEFAULT_ANALYTES = {
 }
 
 DEFAULT_WINDOWS = {
-    "lab_before_h": 24.0,        # issue default: labs collected up to 24 h before the ECG ...
+    "lab_before_h": 24.0,        # default (site config [windows]): labs collected up to 24 h before the ECG ...
     "lab_after_h": 6.0,          # ... or up to 6 h after it
     "k_trend_h": 72.0,           # local choice: an earlier potassium older than 3 days is no trend
     "prior_ecg_min_gap_h": 1.0,  # a repeat within the hour is the same encounter, not a baseline

@@ -12,7 +12,7 @@ Everything except write_parquet_atomic is pure: no files, no connections, no clo
 
 Sources
     UKKA-2020  UK Kidney Association clinical practice guideline, treatment of acute hyperkalaemia
-               in adults (2020): mild 5.5-5.9 mmol/L (from memory, as in /work/shared/REFERENCES.md).
+               in adults (2020): mild 5.5-5.9 mmol/L (from memory; docs/references.md).
 """
 from __future__ import annotations
 
@@ -49,7 +49,7 @@ FINDING_COLUMNS = ["ecg_id", "patient_id", "acquired_at", "screen", "tier", "sco
 CONTRACT_COLUMNS = ["item_id", "rank", "tier", "screen", "patient_id", "ecg_id", "ecg_at", "score",
                     "summary", "evidence", "caveats", "territories", "rule_version", "run_id",
                     "first_flagged_at"]
-# ... then the bookkeeping the issue asks for (status, last_updated_at) and what the episode
+# ... then the bookkeeping the worklist keeps (status, last_updated_at) and what the episode
 # folding, the reopen rule and the score need to be reproducible from the stored row alone.
 ITEM_COLUMNS = CONTRACT_COLUMNS + ["status", "last_updated_at", "status_reason", "episode_start",
                                    "episode_end", "other_ecg_ids", "score_parts"]

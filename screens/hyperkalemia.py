@@ -68,8 +68,8 @@ Sources (citations in screens/rules.toml [sources])
                    severe >= 6.5 mmol/L (checked against secondary pages citing the 2023 update).
     MONTAGUE-2008  Montague BT, Ouellette JR, Buller GK. Retrospective review of the frequency of
                    ECG changes in hyperkalemia. Clin J Am Soc Nephrol 2008;3:324-330.
-    PRACTICE       Peaked T > 10 mm precordial / > 6 mm limb (textbook words ">"; the project
-                   issue words them ">=" and we follow the issue), QRS >= 120 ms, PR > 200 ms,
+    PRACTICE       Peaked T > 10 mm precordial / > 6 mm limb (textbook words ">"; worded ">="
+                   here, one calibration step more sensitive), QRS >= 120 ms, PR > 200 ms,
                    bradycardia < 50 bpm.
     LOCAL          Change cut points against the prior ECG (T +50 %, QRS +20 ms, PR +40 ms), the
                    100 uV floor for T growth and the 50 uV flat-P cut point: cardiosieve's choices.

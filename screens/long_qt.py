@@ -56,10 +56,11 @@ Tisdale et al. 2013 score, from the inputs present [TISDALE-2013]
     lake, so the score is always "partial" and lists what is missing; the band named is a
     lower bound ("at least moderate", "low on the inputs present") unless even the maximum
     of the missing items could not change it. We use this ECG's deciding QTc for the admission QTc item.
-    Wording kept as each source has it: the issue's K modifier is "< 3.5" (hypokalaemia,
-    PRACTICE) while Tisdale's table is "<= 3.5"; both are in rules.toml under their own keys.
+    Wording kept as each source has it: the K modifier is "< 3.5" (hypokalaemia, PRACTICE)
+    while Tisdale's table is "<= 3.5"; both are in rules.toml under their own keys.
     (Tisdale's abstract words the items "> 68 y", "< 3.5", "> 450"; the scoring table, which
-    REFERENCES.md and calculators reproduce, uses ">=" / "<=" and is what we follow.)
+    the secondary page cited in docs/references.md and calculators reproduce, uses ">=" / "<="
+    and is what we follow.)
 
 Unknown sex: the men's limit (450 ms), the more sensitive, with a caveat; the Tisdale female
 item is then missing and the female modifier not assessed. Unknown age: the Tisdale age item

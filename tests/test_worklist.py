@@ -1,5 +1,5 @@
 """Worklist items: episode folding, stable item_id, score and rank, explained away, reopen rule,
-atomic Parquet write. Each test builds its own small findings frame (columns of the brief)."""
+atomic Parquet write. Each test builds its own small findings frame (FINDING_COLUMNS)."""
 import hashlib
 import json
 import os
@@ -16,7 +16,7 @@ NIGHT_END = pd.Timestamp("2026-03-02 02:00", tz="UTC")
 
 def finding(ecg_id="ecg-1", patient_id="pat-1", at="2026-03-01 20:00", screen="hyperkalemia", tier=2,
             severity=0.5, lab_confirmed=1, lab_gap_min=60.0, trend=0.0, values=None, **parts):
-    """One findings row with dull defaults (findings columns of the brief, in order)."""
+    """One findings row with dull defaults (FINDING_COLUMNS, in order)."""
     return {
         "ecg_id": ecg_id, "patient_id": patient_id, "acquired_at": pd.Timestamp(at, tz="UTC"),
         "screen": screen, "tier": tier,
@@ -87,7 +87,8 @@ def test_same_screen_same_patient_within_72_h_fold_into_one_item_keeping_most_se
 
 
 def test_gap_of_exactly_72_h_stays_in_episode_and_a_longer_gap_starts_a_new_one():
-    # Issue text: a new episode where the gap to the previous finding exceeds 72 h.
+    # Episode rule (docs/prioritisation.md): a new episode where the gap to the previous finding
+    # exceeds episode_h, 72 h by default.
     at_72 = findings(finding("e1", at="2026-03-01 00:00"), finding("e2", at="2026-03-04 00:00"))
     over = findings(finding("e1", at="2026-03-01 00:00"), finding("e2", at="2026-03-04 00:00:01"))
     now = pd.Timestamp("2026-03-05", tz="UTC")

@@ -76,7 +76,8 @@ def test_tier_by_potassium_band_and_ecg_signs(k, signs, tier):
 @pytest.mark.parametrize(
     "row, leads_kw, sign",
     [
-        # Peaked T: precordial >= 1000 uV, limb >= 600 uV (PRACTICE, issue words ">=").
+        # Peaked T: precordial >= 1000 uV, limb >= 600 uV (PRACTICE; ">=" here, one calibration step
+        # more sensitive than the textbook's ">").
         ({}, {"t_amp_uv": {"V3": 1000}}, "peaked_t"),
         ({}, {"t_amp_uv": {"II": 600}}, "peaked_t"),
         # QRS >= 120 ms (PRACTICE); PR > 200 ms (PRACTICE); HR < 50 bpm (PRACTICE).
@@ -241,7 +242,7 @@ def test_signs_without_potassium_say_what_was_seen_and_what_the_rank_did():
 @pytest.mark.parametrize("before_h, after_h, words", [(24.0, 6.0, "24 h before to 6 h after"),
                                                       (12.0, 2.5, "12 h before to 2.5 h after")])
 def test_no_potassium_text_names_the_window_applied(before_h, after_h, words):
-    # The lab window is the pipeline's setting (issue default 24 h / 6 h; a site may change it):
+    # The lab window is the pipeline's setting (default 24 h / 6 h; a site may change it):
     # the text is formatted from the columns the aligned table carries, never from a constant.
     aligned = with_columns(ecg_rows(qrs_ms=150.0, **NO_K), lab_before_h=before_h, lab_after_h=after_h)
     out = screen_hyperkalemia(aligned, lead_rows(), RULES)
@@ -372,7 +373,8 @@ def test_site_override_of_a_band_moves_the_tier():
     )
 )
 def test_a_higher_potassium_never_lowers_the_tier(cases):
-    # Property from the issue: raising K, all else equal, never gives a less urgent tier.
+    # Monotone in K (the UKKA-2020 bands rise with K): raising K, all else equal, never gives a
+    # less urgent tier.
     # Rows 2i and 2i+1 differ only in K (K and K + dK); ten pairs per screen call.
     rows = [c for k, dk, hemo, qrs, hr in cases for c in ((k, hemo, qrs, hr), (k + dk, hemo, qrs, hr))]
     aligned = ecg_rows(

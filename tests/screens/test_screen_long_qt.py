@@ -54,7 +54,7 @@ ALL_KNOWN = {"qt_drug_count_24h": 0, "loop_diuretic_24h": False}
 @pytest.mark.parametrize(
     "qt, hr, formula, expected",
     [
-        # Worked values in REFERENCES.md (computed from each formula).
+        # Check values in docs/references.md (computed from each formula).
         (400, 60, "bazett", 400.0), (400, 60, "fridericia", 400.0),
         (400, 60, "framingham", 400.0), (400, 60, "hodges", 400.0),
         (360, 100, "bazett", 464.8), (360, 100, "fridericia", 426.8),
@@ -160,7 +160,7 @@ def test_rise_compares_like_with_like_and_is_the_trend():
     "row, modifier",
     [
         # Each modifier just past its cut point turns "prolonged alone" (3) into tier 2.
-        ({"k_mmol_l": 3.4}, "k_low"),              # K < 3.5 mmol/L (issue; PRACTICE)
+        ({"k_mmol_l": 3.4}, "k_low"),              # K < 3.5 mmol/L (PRACTICE)
         ({"mg_mmol_l": 0.69}, "mg_low"),           # Mg < 0.70 mmol/L (PRACTICE)
         ({"ca_mmol_l": 2.09}, "ca_low"),           # Ca < 2.10 mmol/L (PRACTICE)
         ({"heart_rate_bpm": 49.0}, "bradycardia"),  # HR < 50 bpm (PRACTICE)
@@ -210,7 +210,8 @@ def test_tisdale_score_from_present_inputs_is_partial_and_lists_missing():
     t = evidence(out)["tisdale"]
     assert t["points"] == 13 and t["partial"] is True and t["band"] == "high"
     assert t["missing"] == ["acute_mi", "sepsis", "heart_failure"]
-    # K 3.5: a Tisdale point (<= 3.5) but not the issue's modifier (< 3.5): each as its source words it.
+    # K 3.5: a Tisdale point (<= 3.5) but not the hypokalaemia modifier (< 3.5, PRACTICE): each as its
+    # source words it.
     assert "k_low" not in evidence(out)["values"]["modifiers"]
     assert t["items"]["k_3_5_or_less"] == 2
 
@@ -309,7 +310,7 @@ def test_missing_qt_is_not_evaluable_not_a_silent_pass():
 @settings(max_examples=100, deadline=None)
 @given(qt=st.floats(200.0, 700.0))
 def test_the_four_formulas_agree_at_60_bpm(qt):
-    # Property from the issue: at RR 1 s every correction leaves QT unchanged.
+    # Every correction is anchored at 60 bpm (RR 1 s), so there each leaves QT unchanged.
     values = qtc_all(np.array([qt]), np.array([1000.0]))
     for v in values.values():
         assert v[0] == pytest.approx(qt, abs=1e-9)

@@ -311,7 +311,8 @@ ECG = st.tuples(
 @settings(max_examples=25, deadline=None)
 @given(batch=st.lists(ECG, min_size=8, max_size=8))
 def test_adding_a_contiguous_lead_that_meets_the_cut_point_never_removes_a_finding(batch):
-    # Property from the issue, checked on eight ECGs per screen call to keep it fast.
+    # More evidence never removes a finding: a further contiguous lead meeting the cut point
+    # [UDMI-2018] can only keep or add one. Checked on eight ECGs per screen call to keep it fast.
     bases = [dict(zip(LIMB_AND_PRECORDIAL, values)) for values, _ in batch]
     before = _batch(bases)
     afters, added = [], {}
