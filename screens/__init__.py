@@ -1,9 +1,10 @@
 """The screens: transparent rules from the aligned ECG table to a table of findings.
 
 Each screen is one module, `screens/<name>.py`, holding
-`screen_<name>(aligned, leads, rules=None) -> findings`: a pure function (no I/O, no clock,
-inputs left unchanged; the decision is vectorised over the whole frame and only flagged rows
-get their evidence built). Adding a screen means adding its module, its section in
+`screen_<name>(aligned, leads, rules=None, *, with_criteria=False) -> findings`: a pure function
+(no I/O, no clock, inputs left unchanged). It first computes the screen's criterion table (one
+row per ECG, one typed column per criterion, tier and score parts; screens/_table.py, columns in
+the module docstring), then dresses the flagged rows from that table only. Adding a screen means adding its module, its section in
 `screens/rules.toml`, and one line in `SCREENS` below.
 
 Findings frame (FINDING_COLUMNS, in this order)
@@ -50,15 +51,19 @@ SCREENS: dict[str, ScreenFn] = {
 }
 
 
-def run_screens(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | None = None) -> pd.DataFrame:
+def run_screens(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | None = None, *,
+                with_criteria: bool = False):
     """All registered screens over the aligned ECGs, concatenated in registry order
-    (within a screen, in the aligned table's row order); an empty findings frame when none."""
+    (within a screen, in the aligned table's row order); an empty findings frame when none.
+    with_criteria: (findings, {screen: criterion table}), each table one row per aligned ECG
+    (screens/_table.py); no tables when `aligned` is empty."""
     rules = rules or load_rules()
-    parts = [fn(aligned, leads, rules) for fn in SCREENS.values()]
-    parts = [p for p in parts if len(p)]
-    if not parts:
-        return empty_findings()
-    return pd.concat(parts, ignore_index=True)[FINDING_COLUMNS]
+    results = {name: fn(aligned, leads, rules, with_criteria=True) for name, fn in SCREENS.items()}
+    parts = [found for found, _ in results.values() if len(found)]
+    findings = pd.concat(parts, ignore_index=True)[FINDING_COLUMNS] if parts else empty_findings()
+    if not with_criteria:
+        return findings
+    return findings, {name: table for name, (_, table) in results.items() if table is not None}
 
 
 __all__ = [

@@ -62,6 +62,60 @@ flagged finding says in its caveats which signs could not be assessed; "no ECG s
 only of the signs assessed, naming the others. Every number in a summary or caveat is
 formatted from the threshold or setting actually applied (a site override changes the text).
 
+Criterion table (column, unit, source)
+    ecg_id               text     contract  the ECG (with patient_id and acquired_at, as aligned)
+    patient_id           text     contract  the patient
+    acquired_at          UTC      contract  when the ECG was taken
+    k_mmol_l             mmol/L   lab       the potassium nearest the ECG in the lab window
+    k_band               text     UKKA-2020  severe, moderate, mild or "" (below the bands / none)
+    k_severe             bool     UKKA-2020  K >= 6.5
+    k_moderate           bool     UKKA-2020  K 6.0-6.4
+    k_mild               bool     UKKA-2020  K 5.5-5.9
+    k_offset_min         min      lab       collection minus ECG time
+    k_hemolyzed          bool     lab       the specimen was reported haemolysed
+    k_prev_mmol_l        mmol/L   lab       the potassium before it (trend window)
+    k_change_mmol_l      mmol/L   lab       k_mmol_l - k_prev_mmol_l
+    k_rejected_reason    text     contract  reason code of a rejected potassium when none was accepted
+    heart_rate_bpm       bpm      cart      rate
+    pr_ms                ms       cart      PR interval
+    prior_pr_ms          ms       cart      the prior ECG's PR
+    qrs_ms               ms       cart      QRS duration
+    prior_qrs_ms         ms       cart      the prior ECG's QRS
+    p_ii_uv              uV       cart      P amplitude in II
+    t_max_uv             uV       cart      the tallest T of the T leads
+    t_peak_max_uv        uV       PRACTICE  the tallest peaked T
+    t_growth_max_pct     %        LOCAL     the largest T growth against the prior ECG
+    t_peaked_leads       leads    PRACTICE  leads with a peaked T (comma-joined)
+    t_grown_leads        leads    LOCAL     leads whose T grew >= 50 % (comma-joined)
+    t_peaked_precordial  bool     PRACTICE  T >= 1000 uV in V1-V6
+    t_peaked_limb        bool     PRACTICE  T >= 600 uV in a limb lead
+    t_grown              bool     LOCAL     T grown >= 50 % from an upright prior T >= 100 uV
+    qrs_wide             bool     PRACTICE  QRS >= 120 ms
+    qrs_widened          bool     LOCAL     QRS widened >= 20 ms against the prior ECG
+    pr_long              bool     PRACTICE  PR > 200 ms
+    pr_lengthened        bool     LOCAL     PR lengthened >= 40 ms against the prior ECG
+    sign_peaked_t        bool     PRACTICE  peaked or grown T
+    sign_qrs             bool     PRACTICE  wide or widened QRS
+    sign_pr              bool     PRACTICE  long or lengthened PR
+    sign_p_flat          bool     LOCAL     |P| in II < 50 uV
+    sign_brady           bool     PRACTICE  rate < 50 bpm
+    sign_peaked_t_known  bool     LOCAL     the sign's inputs are present (likewise below)
+    sign_qrs_known       bool     LOCAL     QRS measured
+    sign_pr_known        bool     LOCAL     PR measured
+    sign_p_flat_known    bool     LOCAL     P in II measured
+    sign_brady_known     bool     LOCAL     rate measured
+    sign_count           count    LOCAL     signs present
+    hemolyzed_no_sign    bool     PRACTICE  haemolysed, no ECG sign: severity halved
+    hemolyzed_lowered    bool     PRACTICE  haemolysed mild/moderate without signs: one tier lower
+    k_lowering_24h       bool     site      potassium-lowering treatment in the 24 h before
+    tier                 tier     LOCAL     1..4, 5 = no finding (tiers above)
+    severity             0..1     LOCAL     score part (below)
+    lab_confirmed        bool     LOCAL     a non-haemolysed K >= 5.5 decided it
+    lab_gap_min          min      LOCAL     |k_offset_min|
+    trend                mmol/L   LOCAL     k_change_mmol_l
+    prior_present        bool     LOCAL     a prior ECG exists
+    troponin_ratio       ratio    LOCAL     not used here (null)
+
 Sources (citations in screens/rules.toml [sources])
     UKKA-2020      UK Kidney Association. Clinical practice guidelines: treatment of acute
                    hyperkalaemia in adults. 2020. Bands mild 5.5-5.9, moderate 6.0-6.4,
@@ -84,7 +138,6 @@ from screens._frame import (
     NO_FINDING,
     build_findings,
     empty_findings,
-    fired,
     flag,
     fmt,
     fmt_leads,
@@ -94,7 +147,8 @@ from screens._frame import (
     score_parts,
     text,
 )
-from screens._leads import DISPLAY_ORDER, PRECORDIAL, lead_names, wide
+from screens._leads import DISPLAY_ORDER, PRECORDIAL, wide
+from screens._table import criterion_table, fired_rules, lead_lists, split_leads
 from screens.criteria import Rules, load_rules
 
 SCREEN = "hyperkalemia"
@@ -145,20 +199,17 @@ def _window_words(before_h: float, after_h: float) -> str:
     return f" ({before_h:g} h before to {after_h:g} h after the ECG)"
 
 
-def screen_hyperkalemia(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | None = None) -> pd.DataFrame:
-    """Hyperkalemia findings for the aligned ECGs.
+def criteria_hyperkalemia(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | None = None) -> pd.DataFrame:
+    """The criterion table (module docstring): one row per aligned ECG, in its order.
 
     aligned: the aligned table (k_mmol_l, k_offset_min, k_hemolyzed, k_result_id, k_prev_mmol_l,
     k_change_mmol_l, heart_rate_bpm, pr_ms, qrs_ms, prior_ecg_id, prior_pr_ms, prior_qrs_ms,
     k_lowering_24h; K in mmol/L, intervals in ms; optional: k_rejected_reason (str), lab_before_h and
     lab_after_h (the lab window applied, h)). leads: ecg_lead rows (p_amp_uv, t_amp_uv in uV)
-    for these ECGs and their priors. Returns the findings frame (FINDING_COLUMNS).
+    for these ECGs and their priors.
     """
-    if len(aligned) == 0:
-        return empty_findings()
     require_columns(aligned, REQUIRED)
     r = (rules or load_rules())[SCREEN]
-    n = len(aligned)
 
     k = num(aligned, "k_mmol_l")
     hr = num(aligned, "heart_rate_bpm")
@@ -241,37 +292,111 @@ def screen_hyperkalemia(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules
     severity = np.where(k_known, 0.7 * np.nan_to_num(k_part) + 0.3 * n_signs / 5.0, n_signs / 5.0)
     severity = np.where(hemo_no_sign, severity * 0.5, severity)
 
-    hit = np.flatnonzero(tier < NO_FINDING)
-    if len(hit) == 0:
-        return empty_findings()
-
-    # ---- evidence, only for the flagged rows
+    # ---- what the texts show, computed once over the frame
     k_off = num(aligned, "k_offset_min")
-    k_prev, k_change = num(aligned, "k_prev_mmol_l"), num(aligned, "k_change_mmol_l")
-    k_ids = text(aligned, "k_result_id")
     k_lowering, _ = flag(aligned, "k_lowering_24h")
+    with np.errstate(invalid="ignore"):
+        t_peak_max = t_now.where(peak_leads).max(axis=1).to_numpy()
+        t_growth_max = growth_pct.where(grown_leads).max(axis=1).to_numpy()
+        t_max = t_now.max(axis=1).to_numpy()
+    columns = {
+        "k_mmol_l": k, "k_band": np.array([BAND_WORDS[b] for b in range(4)], dtype=object)[band],
+        "k_severe": severe, "k_moderate": moderate, "k_mild": mild,
+        "k_offset_min": k_off, "k_hemolyzed": hemolyzed,
+        "k_prev_mmol_l": num(aligned, "k_prev_mmol_l"), "k_change_mmol_l": num(aligned, "k_change_mmol_l"),
+        "k_rejected_reason": np.where(k_known, None, text(aligned, "k_rejected_reason")),
+        "heart_rate_bpm": hr, "pr_ms": pr, "prior_pr_ms": prior_pr, "qrs_ms": qrs, "prior_qrs_ms": prior_qrs,
+        "p_ii_uv": p_ii, "t_max_uv": t_max, "t_peak_max_uv": t_peak_max, "t_growth_max_pct": t_growth_max,
+        "t_peaked_leads": lead_lists(peak_leads, T_LEADS), "t_grown_leads": lead_lists(grown_leads, T_LEADS),
+        "t_peaked_precordial": peak_prec.any(axis=1).to_numpy(), "t_peaked_limb": peak_limb.any(axis=1).to_numpy(),
+        "t_grown": grown_leads.any(axis=1).to_numpy(),
+        "qrs_wide": qrs_wide, "qrs_widened": qrs_widened, "pr_long": pr_long, "pr_lengthened": pr_lengthened,
+        **{f"sign_{name}": signs[:, j] for j, name in enumerate(SIGN_NAMES)},
+        **{f"sign_{name}_known": evaluable[:, j] for j, name in enumerate(SIGN_NAMES)},
+        "sign_count": n_signs.astype("int64"),
+        "hemolyzed_no_sign": hemo_no_sign, "hemolyzed_lowered": lowered,
+        "k_lowering_24h": k_lowering,
+        "tier": tier.astype("int64"),
+        "severity": severity, "lab_confirmed": k_known & ~hemolyzed & (band > 0),
+        "lab_gap_min": np.where(k_known, np.abs(k_off), np.nan), "trend": num(aligned, "k_change_mmol_l"),
+        "prior_present": has_prior, "troponin_ratio": np.nan,
+    }
+    return criterion_table(aligned, columns)
+
+
+# Thresholds and the criterion column that says each one fired (evidence `rules`, in this order).
+FIRED = (
+    ("k_severe", "k_severe"),
+    ("k_moderate", "k_moderate"),
+    ("k_mild", "k_mild"),
+    ("t_peaked_precordial", "t_peaked_precordial"),
+    ("t_peaked_limb", "t_peaked_limb"),
+    ("t_growth", "t_grown"),
+    ("qrs_wide", "qrs_wide"),
+    ("qrs_widened", "qrs_widened"),
+    ("pr_long", "pr_long"),
+    ("pr_lengthened", "pr_lengthened"),
+    ("p_flat_ii", "sign_p_flat"),
+    ("bradycardia", "sign_brady"),
+)
+
+
+def screen_hyperkalemia(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | None = None, *,
+                       with_criteria: bool = False):
+    """Hyperkalemia findings for the aligned ECGs: the flagged rows of `criteria_hyperkalemia`,
+    dressed. Returns the findings frame (FINDING_COLUMNS); with_criteria, (findings, criterion table)."""
+    rules = rules or load_rules()
+    if len(aligned) == 0:
+        table, findings = None, empty_findings()
+    else:
+        table = criteria_hyperkalemia(aligned, leads, rules)
+        hit = np.flatnonzero(table["tier"].to_numpy() < NO_FINDING)
+        findings = _dress(aligned, table, hit, rules[SCREEN]) if len(hit) else empty_findings()
+    return (findings, table) if with_criteria else findings
+
+
+def _dress(aligned: pd.DataFrame, table: pd.DataFrame, hit: np.ndarray, r) -> pd.DataFrame:
+    """Summary, caveats, evidence and score parts of the flagged rows, read off the criterion table."""
+    col = lambda name: table[name].to_numpy()   # noqa: E731 (short reads of typed columns)
+    k, k_off, k_prev, k_change = (num(table, c) for c in ("k_mmol_l", "k_offset_min", "k_prev_mmol_l", "k_change_mmol_l"))
+    k_known = ~np.isnan(k)
+    band_words = col("k_band")
+    severe = col("k_severe").astype(bool)
+    hemolyzed = col("k_hemolyzed").astype(bool)
+    hr, pr, prior_pr, qrs, prior_qrs = (num(table, c) for c in ("heart_rate_bpm", "pr_ms", "prior_pr_ms", "qrs_ms", "prior_qrs_ms"))
+    p_ii, t_max, t_peak_max, t_growth_max = (num(table, c) for c in ("p_ii_uv", "t_max_uv", "t_peak_max_uv", "t_growth_max_pct"))
+    signs = np.column_stack([col(f"sign_{name}").astype(bool) for name in SIGN_NAMES])
+    evaluable = np.column_stack([col(f"sign_{name}_known").astype(bool) for name in SIGN_NAMES])
+    sign_peaked, sign_qrs, sign_pr, sign_pflat, sign_brady = signs.T
+    any_sign = signs.any(axis=1)
+    n_signs, tier, severity = col("sign_count"), col("tier"), num(table, "severity")
+    lowered = col("hemolyzed_lowered").astype(bool)
+    has_prior = col("prior_present").astype(bool)
+    k_lowering = col("k_lowering_24h").astype(bool)
+    k_rejected = col("k_rejected_reason")
+    peaked_names, grown_names = col("t_peaked_leads"), col("t_grown_leads")
     prior_qrs_known = ~np.isnan(prior_qrs)
-    # Optional inputs: the reason code of a rejected potassium (only read when none was accepted)
-    # and the lab window the alignment applied (hours), for the texts.
-    k_rejected = text(aligned, "k_rejected_reason")
+    k_ids = text(aligned, "k_result_id")
+    prior_ids = text(aligned, "prior_ecg_id")
+    # Optional input: the lab window the alignment applied (hours), for the texts.
     window_before, window_after = num(aligned, "lab_before_h"), num(aligned, "lab_after_h")
     severe_value = f"{r['k_severe'].value:g}"
+    rules_of_row = fired_rules(table, [(r[key], column) for key, column in FIRED], hit)
     rows = aligned.iloc[hit]
     parts, summaries, evidence, caveats = [], [], [], []
-    for i in hit:
+    for j_row, i in enumerate(hit):
         sign_state = {
             name: (bool(signs[i, j]) if evaluable[i, j] or signs[i, j] else None)
             for j, name in enumerate(SIGN_NAMES)
         }
-        t_peak_names = lead_names(peak_leads, i)
-        t_grown_names = lead_names(grown_leads, i)
-        t_max = np.nanmax(t_now.iloc[i].to_numpy()) if eval_peaked[i] else np.nan
+        t_peak_names = split_leads(peaked_names[i])
+        t_grown_names = split_leads(grown_names[i])
 
         rejected = None if k_known[i] else k_rejected[i]
         window = _window_words(window_before[i], window_after[i])
         words = []
         if k_known[i]:
-            kw = f"K {fmt(k[i], 1)} mmol/L ({BAND_WORDS[band[i]]}) collected {fmt_offset(k_off[i])}"
+            kw = f"K {fmt(k[i], 1)} mmol/L ({band_words[i]}) collected {fmt_offset(k_off[i])}"
             if hemolyzed[i]:
                 kw += ", haemolysed"
             if not np.isnan(k_prev[i]):
@@ -286,10 +411,10 @@ def screen_hyperkalemia(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules
             sign_words.append(f"QRS {fmt(qrs[i])} ms" + (f" (prior {fmt(prior_qrs[i])} ms)" if prior_qrs_known[i] else ""))
         if sign_peaked[i]:
             if t_peak_names:
-                tmax_mv = np.nanmax(t_now.iloc[i][t_peak_names].to_numpy()) / 1000.0
+                tmax_mv = t_peak_max[i] / 1000.0
                 sign_words.append(f"T up to {fmt(tmax_mv, 1)} mV in {fmt_leads(t_peak_names, DISPLAY_ORDER)}")
             if t_grown_names:
-                g = np.nanmax(growth_pct.iloc[i][t_grown_names].to_numpy())
+                g = t_growth_max[i]
                 sign_words.append(f"T grown up to {fmt(g)} % since the prior ECG in {fmt_leads(t_grown_names, DISPLAY_ORDER)}")
         if sign_pr[i]:
             sign_words.append(f"PR {fmt(pr[i])} ms" + (f" (prior {fmt(prior_pr[i])} ms)" if not np.isnan(prior_pr[i]) else ""))
@@ -334,25 +459,12 @@ def screen_hyperkalemia(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules
             cav.append(CAVEAT_K_LOWERING)
         caveats.append(cav)
 
-        rules_fired = fired(
-            (r["k_severe"], severe[i]),
-            (r["k_moderate"], moderate[i]),
-            (r["k_mild"], mild[i]),
-            (r["t_peaked_precordial"], bool(peak_prec.iloc[i].any())),
-            (r["t_peaked_limb"], bool(peak_limb.iloc[i].any())),
-            (r["t_growth"], bool(t_grown_names)),
-            (r["qrs_wide"], qrs_wide[i]),
-            (r["qrs_widened"], qrs_widened[i]),
-            (r["pr_long"], pr_long[i]),
-            (r["pr_lengthened"], pr_lengthened[i]),
-            (r["p_flat_ii"], sign_pflat[i]),
-            (r["bradycardia"], sign_brady[i]),
-        )
+        rules_fired = rules_of_row[j_row]
         evidence.append(
             {
                 "values": {
                     "k_mmol_l": k[i],
-                    "k_band": BAND_WORDS[band[i]] or None,
+                    "k_band": band_words[i] or None,
                     "k_offset_min": k_off[i],
                     "k_hemolyzed": bool(hemolyzed[i]),
                     "k_result_id": k_ids[i],
@@ -365,7 +477,7 @@ def screen_hyperkalemia(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules
                     "qrs_ms": qrs[i],
                     "prior_qrs_ms": prior_qrs[i],
                     "p_ii_uv": p_ii[i],
-                    "t_max_uv": t_max,
+                    "t_max_uv": t_max[i],
                     "t_peaked_leads": t_peak_names,
                     "t_grown_leads": t_grown_names,
                     "prior_ecg_id": prior_ids[i],
@@ -378,7 +490,7 @@ def screen_hyperkalemia(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules
         parts.append(
             score_parts(
                 severity=severity[i],
-                lab_confirmed=k_known[i] and not hemolyzed[i] and band[i] > 0,
+                lab_confirmed=bool(col("lab_confirmed")[i]),
                 lab_gap_min=k_off[i] if k_known[i] else np.nan,
                 trend=k_change[i],
                 prior_present=has_prior[i],

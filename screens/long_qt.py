@@ -83,6 +83,76 @@ score_parts
     troponin_ratio null (not used here)
     qtc_ms, modifier_count, tisdale_points  extra parts
 
+Criterion table (column, unit, source)
+    ecg_id                         text     contract  the ECG (with patient_id and acquired_at, as aligned)
+    patient_id                     text     contract  the patient
+    acquired_at                    UTC      contract  when the ECG was taken
+    qt_ms                          ms       cart      measured QT
+    rr_ms                          ms       cart      mean RR (from the rate when absent)
+    heart_rate_bpm                 bpm      cart      rate (from RR when absent)
+    qrs_ms                         ms       cart      QRS duration
+    pr_ms                          ms       cart      PR interval (null: none measured)
+    sex                            F/M      contract  null when unknown
+    age_years                      y        contract  whole years at the ECG
+    paced                          bool     cart      paced rhythm
+    qrs_wide                       bool     PRACTICE  QRS >= 120 ms: QT adjusted
+    qt_used_ms                     ms       BOGOSSIAN-2014  QT, or QT - 0.485 x QRS when wide
+    qtc_bazett_ms                  ms       BAZETT-1920  of qt_used_ms
+    qtc_fridericia_ms              ms       FRID-1920  of qt_used_ms
+    qtc_framingham_ms              ms       SAGIE-1992  of qt_used_ms
+    qtc_hodges_ms                  ms       HODGES-1983  of qt_used_ms
+    qtc_ms                         ms       setting   the deciding QTc (qtc_formula)
+    qtc_unadjusted_ms              ms       setting   the deciding formula on the measured QT
+    qtc_evaluable                  bool     LOCAL     QT and RR (or rate) present
+    qtc_limit_ms                   ms       AHA-2009-IV  the sex limit applied (men's when unknown)
+    qtc_prolonged                  bool     AHA-2009-IV  QTc at or above qtc_limit_ms
+    qtc_prolonged_f                bool     AHA-2009-IV  prolonged by the women's limit
+    qtc_prolonged_m                bool     AHA-2009-IV  prolonged by the men's limit
+    qtc_high_risk                  bool     AHA-2010-TDP  QTc > 500 ms
+    prior_qtc_ms                   ms       setting   the prior ECG's QTc, same formula and adjustment
+    qtc_rise_ms                    ms       AHA-2010-TDP  qtc_ms - prior_qtc_ms
+    qtc_rise_high                  bool     AHA-2010-TDP  rise > 60 ms
+    k_mmol_l                       mmol/L   lab       potassium in the lab window
+    mg_mmol_l                      mmol/L   lab       magnesium in the lab window
+    ca_mmol_l                      mmol/L   lab       calcium in the lab window
+    qt_drug_count_24h              count    site      QT-prolonging drugs given (null: no data)
+    loop_diuretic_24h              bool     site      loop diuretic given (null: no data)
+    mod_k_low                      bool     PRACTICE  K < 3.5 mmol/L
+    mod_mg_low                     bool     PRACTICE  Mg < 0.70 mmol/L
+    mod_ca_low                     bool     PRACTICE  Ca < 2.10 mmol/L
+    mod_bradycardia                bool     PRACTICE  rate < 50 bpm
+    mod_female                     bool     TISDALE-2013  female sex
+    mod_age_older                  bool     TISDALE-2013  age >= 68 y
+    mod_qt_drug                    bool     site      a QT-prolonging drug
+    mod_loop_diuretic              bool     site      a loop diuretic
+    mod_k_low_known                bool     LOCAL     the modifier's input is present (likewise below)
+    mod_mg_low_known               bool     LOCAL     Mg measured
+    mod_ca_low_known               bool     LOCAL     Ca measured
+    mod_bradycardia_known          bool     LOCAL     rate present
+    mod_female_known               bool     LOCAL     sex recorded
+    mod_age_older_known            bool     LOCAL     birth date recorded
+    mod_qt_drug_known              bool     LOCAL     medication data present
+    mod_loop_diuretic_known        bool     LOCAL     medication data present
+    modifier_count                 count    LOCAL     modifiers met
+    tisdale_age_68_or_more_points  points   TISDALE-2013  item points (null: input missing)
+    tisdale_female_points          points   TISDALE-2013  item points
+    tisdale_loop_diuretic_points   points   TISDALE-2013  item points
+    tisdale_k_3_5_or_less_points   points   TISDALE-2013  item points
+    tisdale_qtc_450_or_more_points points   TISDALE-2013  item points
+    tisdale_qt_drugs_points        points   TISDALE-2013  item points (3 one drug, 6 two or more)
+    tisdale_points                 points   TISDALE-2013  sum over the items present
+    tisdale_missing_max            points   TISDALE-2013  most the missing items could add
+    rate_slow_for_correction       bool     PRACTICE  rate < 50 bpm: correction unreliable
+    rate_fast_for_correction       bool     PRACTICE  rate > 100 bpm: correction unreliable
+    irregular_suspected            bool     LOCAL     no PR and rate/RR disagree by > 10 %
+    tier                           tier     LOCAL     1..4, 5 = no finding (tiers above)
+    severity                       0..1     LOCAL     score part (below)
+    lab_confirmed                  bool     LOCAL     a lab modifier is met
+    lab_gap_min                    min      LOCAL     |offset| of the closest lab modifier
+    trend                          ms       LOCAL     the QTc rise
+    prior_present                  bool     LOCAL     a prior ECG exists
+    troponin_ratio                 ratio    LOCAL     not used here (null)
+
 Sources (citations in screens/rules.toml [sources])
     AHA-2009-IV     Rautaharju PM, Surawicz B, Gettes LS. AHA/ACCF/HRS recommendations for the
                     standardization and interpretation of the electrocardiogram, part IV.
@@ -109,7 +179,6 @@ from screens._frame import (
     NO_FINDING,
     build_findings,
     empty_findings,
-    fired,
     flag,
     fmt,
     num,
@@ -119,6 +188,7 @@ from screens._frame import (
     text,
     age_years,
 )
+from screens._table import criterion_table, fired_rules
 from screens.criteria import Rules, load_rules
 
 SCREEN = "long_qt"
@@ -143,6 +213,7 @@ TISDALE_POINTS = {
     "heart_failure": 3,
 }
 TISDALE_NOT_IN_LAKE = ("acute_mi", "sepsis", "heart_failure")
+TISDALE_LAKE_ITEMS = ("age_68_or_more", "female", "loop_diuretic", "k_3_5_or_less", "qtc_450_or_more", "qt_drugs")
 
 # Caveat texts. Every number in them is filled in from the threshold applied (see _caveat_texts),
 # so a site override never leaves the text contradicting the rule.
@@ -230,16 +301,13 @@ def _rr(aligned: pd.DataFrame, rr_col: str, hr_col: str) -> np.ndarray:
     return np.where(rr > 0, rr, np.nan)
 
 
-def screen_long_qt(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | None = None) -> pd.DataFrame:
-    """Long-QT risk findings for the aligned ECGs.
+def criteria_long_qt(aligned: pd.DataFrame, leads: pd.DataFrame | None = None, rules: Rules | None = None) -> pd.DataFrame:
+    """The criterion table (module docstring): one row per aligned ECG, in its order.
 
     aligned: the aligned table (qt_ms, rr_ms, heart_rate_bpm, qrs_ms, pr_ms, paced, sex, age_years,
     k/mg/ca_mmol_l and offsets, prior_qt_ms, prior_rr_ms, prior_heart_rate_bpm, prior_qrs_ms,
     qt_drug_count_24h, loop_diuretic_24h). leads: unused (the QT screen reads global intervals).
-    Returns the findings frame (FINDING_COLUMNS).
     """
-    if len(aligned) == 0:
-        return empty_findings()
     require_columns(aligned, REQUIRED)
     r = (rules or load_rules())[SCREEN]
     formula = r.setting("qtc_formula")
@@ -336,25 +404,114 @@ def screen_long_qt(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | No
         rise_part = np.clip((rise - r["qtc_rise"].value) / 60.0, 0.0, 1.0)
     severity = 0.7 * np.fmax(np.nan_to_num(qtc_part), np.nan_to_num(rise_part)) + 0.3 * np.minimum(n_mods, 3) / 3.0
 
-    hit = np.flatnonzero(tier < NO_FINDING)
-    if len(hit) == 0:
-        return empty_findings()
-
-    # ---- evidence, only for the flagged rows
-    rate_odd = r["hr_correction_low"].met(hr) | r["hr_correction_high"].met(hr)
+    # ---- texts' inputs that are decisions too: rate outside the correction's range, irregular rhythm
+    rate_slow = r["hr_correction_low"].met(hr)
+    rate_fast = r["hr_correction_high"].met(hr)
     rr_hr = num(aligned, "rr_ms") * hr_measured / 60000.0
     with np.errstate(invalid="ignore"):
         mismatch_pct = np.abs(rr_hr - 1.0) * 100.0
     irregular = np.isnan(pr) & r["rr_hr_mismatch"].met(mismatch_pct)
+    # ---- the closest lab that made a modifier (score part)
+    gaps = np.column_stack([np.where(mod[m], np.abs(off), np.nan) for m, off in
+                            (("k_low", k_off), ("mg_low", mg_off), ("ca_low", ca_off))])
+    with np.errstate(invalid="ignore"):
+        lab_gap = np.where(np.isnan(gaps).all(axis=1), np.nan, np.nanmin(np.where(np.isnan(gaps), np.inf, gaps), axis=1))
+
+    columns = {
+        "qt_ms": qt, "rr_ms": rr, "heart_rate_bpm": hr, "qrs_ms": qrs, "pr_ms": pr,
+        "sex": np.where(female, "F", np.where(male, "M", None)), "age_years": age, "paced": paced,
+        "qrs_wide": wide, "qt_used_ms": qt_used,
+        **{f"qtc_{name}_ms": qtc[name] for name in FORMULA_NAMES},
+        "qtc_ms": decide, "qtc_unadjusted_ms": qtc_raw[formula], "qtc_evaluable": evaluable,
+        "qtc_limit_ms": limit, "qtc_prolonged": prolonged, "qtc_prolonged_f": female & prolonged,
+        "qtc_prolonged_m": ~female & prolonged, "qtc_high_risk": high,
+        "prior_qtc_ms": prior_decide, "qtc_rise_ms": rise, "qtc_rise_high": rose,
+        "k_mmol_l": k, "mg_mmol_l": mg, "ca_mmol_l": ca, "qt_drug_count_24h": drugs,
+        "loop_diuretic_24h": pd.array(np.where(loop_known, loop, False), dtype="boolean").copy(),
+        **{f"mod_{name}": mod[name] for name in mod},
+        **{f"mod_{name}_known": mod_known[name] for name in mod},
+        "modifier_count": n_mods.astype("int64"),
+        **{f"tisdale_{name}_points": np.where(known, pts, np.nan).astype(float) for name, (pts, known) in t_items.items()},
+        "tisdale_points": np.asarray(t_points, dtype="int64"),
+        "tisdale_missing_max": np.asarray(t_missing_max, dtype="int64"),
+        "rate_slow_for_correction": rate_slow, "rate_fast_for_correction": rate_fast,
+        "irregular_suspected": irregular,
+        "tier": tier.astype("int64"),
+        "severity": severity, "lab_confirmed": ~np.isnan(lab_gap), "lab_gap_min": lab_gap, "trend": rise,
+        "prior_present": pd.notna(text(aligned, "prior_ecg_id")), "troponin_ratio": np.nan,
+    }
+    table = criterion_table(aligned, columns)
+    table.loc[~loop_known, "loop_diuretic_24h"] = pd.NA
+    return table
+
+
+# Thresholds and the criterion column that says each one fired (evidence `rules`, in this order).
+FIRED = (
+    ("qtc_prolonged_f", "qtc_prolonged_f"),
+    ("qtc_prolonged_m", "qtc_prolonged_m"),
+    ("qtc_high_risk", "qtc_high_risk"),
+    ("qtc_rise", "qtc_rise_high"),
+    ("qrs_wide", "qrs_wide"),
+    ("k_low", "mod_k_low"),
+    ("mg_low", "mod_mg_low"),
+    ("ca_low", "mod_ca_low"),
+    ("bradycardia", "mod_bradycardia"),
+    ("age_older", "mod_age_older"),
+    ("hr_correction_low", "rate_slow_for_correction"),
+    ("hr_correction_high", "rate_fast_for_correction"),
+    ("rr_hr_mismatch", "irregular_suspected"),
+)
+
+
+def screen_long_qt(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | None = None, *,
+                  with_criteria: bool = False):
+    """Long-QT risk findings for the aligned ECGs: the flagged rows of `criteria_long_qt`, dressed.
+    Returns the findings frame (FINDING_COLUMNS); with_criteria, (findings, criterion table)."""
+    rules = rules or load_rules()
+    if len(aligned) == 0:
+        table, findings = None, empty_findings()
+    else:
+        table = criteria_long_qt(aligned, leads, rules)
+        hit = np.flatnonzero(table["tier"].to_numpy() < NO_FINDING)
+        findings = _dress(aligned, table, hit, rules[SCREEN]) if len(hit) else empty_findings()
+    return (findings, table) if with_criteria else findings
+
+
+def _dress(aligned: pd.DataFrame, table: pd.DataFrame, hit: np.ndarray, r) -> pd.DataFrame:
+    """Summary, caveats, evidence and score parts of the flagged rows, read off the criterion table."""
+    col = lambda name: table[name].to_numpy()   # noqa: E731 (short reads of typed columns)
+    formula = r.setting("qtc_formula")
+    qt, qrs, pr, rr, hr = (num(table, c) for c in ("qt_ms", "qrs_ms", "pr_ms", "rr_ms", "heart_rate_bpm"))
+    female, male, sex_unknown = sex_masks(table)
+    age = num(table, "age_years")
+    paced, wide = col("paced").astype(bool), col("qrs_wide").astype(bool)
+    qt_used, decide, limit = num(table, "qt_used_ms"), num(table, "qtc_ms"), num(table, "qtc_limit_ms")
+    qtc = {name: num(table, f"qtc_{name}_ms") for name in FORMULA_NAMES}
+    qtc_raw = {formula: num(table, "qtc_unadjusted_ms")}
+    evaluable, prolonged = col("qtc_evaluable").astype(bool), col("qtc_prolonged").astype(bool)
+    high, rose = col("qtc_high_risk").astype(bool), col("qtc_rise_high").astype(bool)
+    prior_decide, rise = num(table, "prior_qtc_ms"), num(table, "qtc_rise_ms")
+    k, mg, ca, drugs = (num(table, c) for c in ("k_mmol_l", "mg_mmol_l", "ca_mmol_l", "qt_drug_count_24h"))
+    loop, loop_known = flag(table, "loop_diuretic_24h")
+    mod = {key: col(f"mod_{key}").astype(bool) for key, _, _ in MODIFIER_INPUTS}
+    mod_known = {key: col(f"mod_{key}_known").astype(bool) for key, _, _ in MODIFIER_INPUTS}
+    n_mods, tier = col("modifier_count"), col("tier")
+    t_items = {name: (num(table, f"tisdale_{name}_points"), ~np.isnan(num(table, f"tisdale_{name}_points")))
+               for name in TISDALE_LAKE_ITEMS}
+    t_points, t_missing_max = col("tisdale_points"), col("tisdale_missing_max")
+    severity, lab_gap = num(table, "severity"), num(table, "lab_gap_min")
+    rate_odd = col("rate_slow_for_correction").astype(bool) | col("rate_fast_for_correction").astype(bool)
+    irregular = col("irregular_suspected").astype(bool)
     prior_ids = text(aligned, "prior_ecg_id")
     rows = aligned.iloc[hit]
     fname = FORMULA_NAMES[formula]
+    rules_of_row = fired_rules(table, [(r[key], column) for key, column in FIRED], hit)
     # Numbers for the texts, read from the rules applied (a site override changes the text too).
     high_limit, rise_limit = r["qtc_high_risk"].value, r["qtc_rise"].value
     rate_low, rate_high = r["hr_correction_low"].value, r["hr_correction_high"].value
     mismatch_limit, wide_limit = r["rr_hr_mismatch"].value, r["qrs_wide"].value
     parts, summaries, evidence, caveats = [], [], [], []
-    for i in hit:
+    for j, i in enumerate(hit):
         mod_words = []
         if mod["k_low"][i]:
             mod_words.append(f"K {fmt(k[i], 1)} mmol/L")
@@ -447,22 +604,7 @@ def screen_long_qt(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | No
                 cav.append(words_unknown)
             caveats.append(cav)
 
-        rules_fired = fired(
-            (r["qtc_prolonged_f"], female[i] and prolonged[i]),
-            (r["qtc_prolonged_m"], (not female[i]) and prolonged[i]),
-            (r["qtc_high_risk"], high[i]),
-            (r["qtc_rise"], rose[i]),
-            (r["qrs_wide"], wide[i]),
-            (r["k_low"], mod["k_low"][i]),
-            (r["mg_low"], mod["mg_low"][i]),
-            (r["ca_low"], mod["ca_low"][i]),
-            (r["bradycardia"], mod["bradycardia"][i]),
-            (r["age_older"], mod["age_older"][i]),
-            (r["hr_correction_low"], r["hr_correction_low"].met(hr[i])),
-            (r["hr_correction_high"], r["hr_correction_high"].met(hr[i])),
-            (r["rr_hr_mismatch"], irregular[i]),
-        )
-        lab_gaps = [abs(off[i]) for name, off in (("k_low", k_off), ("mg_low", mg_off), ("ca_low", ca_off)) if mod[name][i]]
+        rules_fired = rules_of_row[j]
         evidence.append(
             {
                 "values": {
@@ -502,8 +644,8 @@ def screen_long_qt(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | No
         parts.append(
             score_parts(
                 severity=severity[i],
-                lab_confirmed=bool(lab_gaps),
-                lab_gap_min=min(lab_gaps) if lab_gaps else np.nan,
+                lab_confirmed=not np.isnan(lab_gap[i]),
+                lab_gap_min=lab_gap[i],
                 trend=rise[i],
                 prior_present=prior_ids[i] is not None,
                 qtc_ms=decide[i],

@@ -90,6 +90,105 @@ score_parts
     troponin_ratio trop_max_ratio (null without troponin)
     max_st_uv, leads_meeting, reciprocal  extra parts
 
+Criterion table (column, unit, source)
+    ecg_id                          text    contract        the ECG (with patient_id and acquired_at, as aligned)
+    patient_id                      text    contract        the patient
+    acquired_at                     UTC     contract        when the ECG was taken
+    pattern                         text    LOCAL           the pattern chosen (above), "" when none
+    pattern_leads                   leads   LOCAL           the leads that made the pattern (comma-joined)
+    pattern_lead_count              count   LOCAL           how many
+    st_max_uv                       uV      cart            the highest ST of the pattern's leads
+    st_deepest_uv                   uV      cart            the largest |ST| of the pattern's leads
+    ste_contiguous                  bool    UDMI-2018       elevation at the cut point in two contiguous leads
+    ste_leads                       leads   UDMI-2018       the leads in such pairs
+    ste_lead_count                  count   UDMI-2018       how many
+    ste_max_over_cut                ratio   LOCAL           the highest ST / its cut point among them
+    ste_clear_ratio                 bool    LOCAL           an elevation finding with a lead at >= 2x its cut point
+    ste_clear_leads                 bool    LOCAL           an elevation finding in >= 3 leads
+    cut_ste_general                 bool    UDMI-2018       a lead judged by the 100 uV cut point (likewise below)
+    cut_ste_v2v3_women              bool    UDMI-2018       V2-V3 150 uV (women; unknown sex)
+    cut_ste_v2v3_men_older          bool    UDMI-2018       V2-V3 200 uV (men >= 40 y; unknown age)
+    cut_ste_v2v3_men_younger        bool    UDMI-2018       V2-V3 250 uV (men < 40 y)
+    cut_ste_right_men_younger       bool    UDMI-2018       V3R/V4R 100 uV (men < 30 y)
+    cut_ste_right                   bool    UDMI-2018       V3R/V4R 50 uV
+    cut_ste_posterior_men_younger   bool    UDMI-2018       V7-V9 100 uV (men < 40 y)
+    cut_ste_posterior               bool    UDMI-2018       V7-V9 50 uV
+    territory_inferior              bool    UDMI-2018       the finding names this territory (likewise below)
+    territory_lateral               bool    UDMI-2018       I, aVL, V5, V6
+    territory_anterior              bool    PRACTICE        V3, V4
+    territory_septal                bool    PRACTICE        V1, V2
+    territory_posterior             bool    UDMI-2018       V7-V9, or two of V1-V3 depressed
+    territory_right_ventricular     bool    UDMI-2018       V3R, V4R
+    territories                     text    LOCAL           the territories, comma-joined
+    reciprocal                      bool    UDMI-2018       depression >= 50 uV in two contiguous leads of the opposite wall
+    reciprocal_leads                leads   UDMI-2018       those leads
+    minus_avr_supporting            bool    PRACTICE        -aVR agrees with a limb-lead elevation
+    std_v1_v3                       bool    UDMI-2018       ST depression >= 50 uV in two of V1-V3
+    std_v1_v3_leads                 leads   UDMI-2018       those leads
+    posterior_involvement           bool    UDMI-2018       posterior pattern, or elevation with V1-V3 depression
+    posterior_dominant_r            bool    UDMI-2018       R/|S| > 1 in a depressed V1-V3 lead (supporting)
+    posterior_upright_t             bool    PRACTICE        upright T in a depressed V1-V3 lead (supporting)
+    fired_dominant_r                bool    UDMI-2018       supporting evidence of a posterior finding
+    fired_upright_t                 bool    PRACTICE        supporting evidence of a posterior finding
+    avr_widespread                  bool    PRACTICE        aVR >= 100 uV with >= 6 other leads depressed >= 50 uV
+    fired_avr_widespread            bool    PRACTICE        the aVR pattern was chosen
+    widespread_depression_leads     leads   PRACTICE        the depressed leads other than aVR
+    widespread_depression_count     count   PRACTICE        how many
+    std_contiguous                  bool    UDMI-2018       ST depression >= 50 uV in two contiguous leads
+    std_alone                       bool    UDMI-2018       the depression pattern was chosen
+    std_leads                       leads   UDMI-2018       the leads in such pairs
+    walls_elevated                  count   LOCAL           walls (inferior, lateral, anterior) with elevation
+    pericarditis_like               bool    PRACTICE        the pericarditis-like distribution (caveat, one tier lower)
+    qrs_ms                          ms      cart            QRS duration
+    paced                           bool    cart            paced rhythm
+    lbbb_shape                      bool    LOCAL           QRS >= 120 ms, V1 S-dominant, I and V6 R-dominant
+    lbbb_shape_unknown              bool    LOCAL           QRS >= 120 ms and a shape lead missing
+    lbbb_or_paced                   bool    LOCAL           plain cut points replaced by Sgarbossa and Smith
+    fired_lbbb_qrs                  bool    PRACTICE        the LBBB pattern was chosen on the QRS shape
+    sgarbossa_points                points  SGARBOSSA-1996  5 + 3 + 2 as met
+    sgarbossa_positive              bool    SGARBOSSA-1996  >= 3 points, LBBB pattern chosen
+    smith_positive                  bool    SMITH-2012      the Smith-modified rule met (LBBB or paced)
+    sgarbossa_concordant_ste_leads  leads   SGARBOSSA-1996  concordant STE >= 100 uV
+    sgarbossa_concordant_std_leads  leads   SGARBOSSA-1996  concordant STD >= 100 uV in V1-V3
+    sgarbossa_discordant_ste_leads  leads   SGARBOSSA-1996  discordant STE >= 500 uV
+    smith_ratio_leads               leads   SMITH-2012      discordant STE >= 100 uV with ST/S <= -0.25
+    smith_min_ratio                 ratio   SMITH-2012      the lowest ST/S among them
+    fired_sg_concordant_ste         bool    SGARBOSSA-1996  criterion met in the LBBB pattern (likewise below)
+    fired_sg_concordant_std         bool    SGARBOSSA-1996  concordant depression
+    fired_sg_discordant_ste         bool    SGARBOSSA-1996  discordant elevation >= 500 uV
+    fired_smith_ratio               bool    SMITH-2012      the ratio criterion
+    sokolow_lyon_uv                 uV      SOKOLOW-1949    S V1 + max R V5/V6
+    cornell_uv                      uV      CORNELL-1985    R aVL + S V3
+    lvh_voltage                     bool    SOKOLOW-1949    Sokolow-Lyon or Cornell met
+    lvh_explains                    bool    LOCAL           LVH explains the deviation: one tier lower
+    lvh_not_explained               bool    LOCAL           LVH voltage that does not explain it
+    fired_sokolow                   bool    SOKOLOW-1949    Sokolow-Lyon used to lower the rank
+    fired_cornell_men               bool    CORNELL-1985    Cornell (men) used to lower the rank
+    fired_cornell_women             bool    CORNELL-1985    Cornell (women; unknown sex) used to lower the rank
+    fired_lvh_proportionate         bool    LOCAL           proportionate V1-V3 elevation (ST < 0.25 x |S|)
+    sex                             F/M     contract        null when unknown
+    age_years                       y       contract        whole years at the ECG
+    leads_missing                   leads   contract        standard leads with no ST value
+    posterior_leads_recorded        bool    cart            V7-V9 recorded
+    prior_leads_known               bool    cart            the prior ECG has lead values
+    prior_gap_h                     h       contract        hours since the prior ECG
+    same_as_prior                   bool    LOCAL           every lead of the pattern met it on the prior ECG
+    prior_old                       bool    LOCAL           same, and the prior is older than the episode window: one tier lower
+    persistent                      bool    LOCAL           same, within the episode window: not lowered
+    new_vs_prior                    bool    LOCAL           depression not on a prior with lead values: one tier higher
+    trop_max_ratio                  ratio   UDMI-2018       highest troponin / its URL in the window
+    trop_delta_ng_l                 ng/L    LOCAL           troponin change in the window
+    trop_above_url                  bool    UDMI-2018       above the 99th-centile URL
+    trop_rising                     bool    LOCAL           rise >= 5 ng/L
+    trop_raise                      bool    LOCAL           either: one tier higher
+    tier                            tier    LOCAL           1..4, 5 = no finding (tiers above)
+    severity                        0..1    LOCAL           score part (below)
+    lab_confirmed                   bool    LOCAL           troponin above its URL or rising
+    lab_gap_min                     min     LOCAL           |troponin offset|
+    trend                           ng/L    LOCAL           troponin change
+    prior_present                   bool    LOCAL           a prior ECG exists
+    troponin_ratio                  ratio   LOCAL           trop_max_ratio
+
 Sources (citations in screens/rules.toml [sources]; check values in docs/references.md)
     UDMI-2018       Thygesen K, Alpert JS, Jaffe AS, et al. Fourth universal definition of
                     myocardial infarction (2018). Circulation 2018;138:e618-e651.
@@ -117,7 +216,6 @@ from screens._frame import (
     age_years,
     build_findings,
     empty_findings,
-    fired,
     flag,
     fmt,
     fmt_leads,
@@ -137,6 +235,7 @@ from screens._leads import (
     group_pairs,
     wide,
 )
+from screens._table import criterion_table, fired_rules, lead_lists, split_leads
 from screens.criteria import Rules, ScreenRules, load_rules
 
 SCREEN = "st_deviation"
@@ -420,16 +519,18 @@ def _tiers(pattern: np.ndarray, ev: dict[str, Any], adjust: np.ndarray) -> np.nd
     return np.where(base < NO_FINDING, np.clip(base + adjust, lo, hi), NO_FINDING)
 
 
-def screen_st_deviation(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | None = None) -> pd.DataFrame:
-    """Acute ST deviation findings for the aligned ECGs.
+def criteria_st_deviation(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | None = None) -> pd.DataFrame:
+    """The criterion table (module docstring): one row per aligned ECG, in its order.
 
     aligned: the aligned table (qrs_ms, paced, sex, age_years, prior_ecg_id, prior_gap_h, prior_qrs_ms,
     trop_ng_l, trop_offset_min, trop_max_ratio, trop_delta_ng_l, trop_n). leads: ecg_lead rows
     (st_j_uv, r_amp_uv, s_amp_uv, t_amp_uv in uV) for these ECGs and their prior ECGs.
-    Returns the findings frame (FINDING_COLUMNS), with territories for elevation findings.
     """
-    if len(aligned) == 0:
-        return empty_findings()
+    return _criteria(aligned, leads, rules)[0]
+
+
+def _criteria(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | None) -> tuple[pd.DataFrame, dict]:
+    """The criterion table, and the per-lead frames (ST, cut points, ST/S) the evidence lists."""
     require_columns(aligned, REQUIRED)
     r = (rules or load_rules())[SCREEN]
     n = len(aligned)
@@ -505,57 +606,176 @@ def screen_st_deviation(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules
     )
     tier = _tiers(pattern, ev, adjust)
 
-    hit = np.flatnonzero(tier < NO_FINDING)
-    if len(hit) == 0:
-        return empty_findings()
-    return _dress(
-        aligned, hit, r, now, ev, pattern, tier, fired_now, missing_std,
-        female=female, male=male, sex_unknown=sex_unknown, age=age, qrs=qrs, paced=paced,
-        prior_ids=prior_ids, has_prior=has_prior, prior_leads_known=prior_leads_known, prior_gap=prior_gap,
-        same_as_prior=same_as_prior, prior_old=prior_old, persistent=persistent, new_depression=new_depression,
-        trop_ratio=trop_ratio, trop_delta=trop_delta, trop_above=trop_above, trop_rising=trop_rising,
-        trop_raise=trop_raise, pericarditis=pericarditis, lvh_applies=lvh_applies,
-        lvh_not_explained=lvh_not_explained, spec=spec,
-    )
-
-
-def _dress(aligned, hit, r, now, ev, pattern, tier, fired_now, missing_std, **m) -> pd.DataFrame:
-    """Summary, caveats, evidence and score parts for the flagged rows `hit` (decisions are made)."""
+    # ---- the criterion table: decisions as columns, lead sets as comma-joined lead names
     st = now["st_j_uv"]
+    is_lbbb, is_post, is_avr = pattern == P_LBBB, pattern == P_POSTERIOR, pattern == P_AVR
+    with np.errstate(invalid="ignore"):
+        pat_st = st.where(fired_now[ALL_LEADS])
+        max_st = pat_st.max(axis=1).to_numpy()
+        deepest = pat_st.abs().max(axis=1).to_numpy()
+        smith_min = ev["st_s"].where(ev["smith3"]).min(axis=1).to_numpy()
+    n_pattern = fired_now.sum(axis=1).to_numpy()
+    n_wide_dep = ev["wide_dep"].sum(axis=1).to_numpy()
+    # Which elevation cut point each qualifying lead was judged by (evidence rules).
+    cut_used = {}
+    for lead, (conds, ths) in spec.items():
+        taken = np.zeros(n, dtype=bool)
+        for cond, th in zip(conds, ths):
+            now_by = np.asarray(cond, dtype=bool) & ~taken
+            taken |= now_by
+            use = now_by & ev["qualifying"][lead].to_numpy() & is_elev
+            cut_used[th.key] = cut_used.get(th.key, np.zeros(n, dtype=bool)) | use
+    severity = _severity(pattern, ev, r, deepest, n_pattern, n_wide_dep, st["aVR"].to_numpy())
+    territory = {t: ev["territory"][t] & is_elev for t in TERRITORY_ORDER}
+    territory["posterior"] = territory["posterior"] | is_post
+    lb_terr_leads = (ev["c1"] | ev["c3"] | ev["smith3"])
+    for t in TERRITORY_ORDER:
+        lb_t = lb_terr_leads[[l for l in TERRITORY_LEADS[t] if l in lb_terr_leads.columns]].any(axis=1).to_numpy() \
+            if any(l in lb_terr_leads.columns for l in TERRITORY_LEADS[t]) else np.zeros(n, dtype=bool)
+        if t == "posterior":
+            lb_t = lb_t | ev["c2"].any(axis=1).to_numpy()
+        territory[t] = territory[t] | (is_lbbb & lb_t)
+    terr_mask = pd.DataFrame({t: territory[t] for t in TERRITORY_ORDER})
+    columns = {
+        "pattern": pattern.astype(object),
+        "pattern_leads": lead_lists(fired_now, DISPLAY_ORDER), "pattern_lead_count": n_pattern.astype("int64"),
+        "st_max_uv": max_st, "st_deepest_uv": deepest,
+        "ste_contiguous": ev["elevated"], "ste_leads": lead_lists(ev["qualifying"], DISPLAY_ORDER),
+        "ste_lead_count": ev["n_leads"].astype("int64"), "ste_max_over_cut": ev["max_ratio"],
+        "ste_clear_ratio": r["ste_clear_ratio"].met(ev["max_ratio"]) & is_elev,
+        "ste_clear_leads": r["ste_clear_leads"].met(ev["n_leads"]) & is_elev,
+        **{f"cut_{key}": used for key, used in cut_used.items()},
+        **{f"territory_{t}": territory[t] for t in TERRITORY_ORDER},
+        "territories": lead_lists(terr_mask, TERRITORY_ORDER),
+        "reciprocal": ev["recip"] & is_elev, "reciprocal_leads": lead_lists(ev["recip_leads"] & is_elev[:, None], DISPLAY_ORDER),
+        "minus_avr_supporting": ev["minus_avr_support"] & is_elev,
+        "std_v1_v3": ev["post_any"], "std_v1_v3_leads": lead_lists(ev["post_leads"], DISPLAY_ORDER),
+        "posterior_involvement": is_post | (is_elev & ev["post_any"]),
+        "posterior_dominant_r": ev["dominant_r"], "posterior_upright_t": ev["upright_t"],
+        "fired_dominant_r": is_post & ev["dominant_r"], "fired_upright_t": is_post & ev["upright_t"],
+        "avr_widespread": ev["avr"], "fired_avr_widespread": is_avr,
+        "widespread_depression_leads": lead_lists(ev["wide_dep"], DISPLAY_ORDER),
+        "widespread_depression_count": n_wide_dep.astype("int64"),
+        "std_contiguous": ev["dep_any"], "std_alone": is_dep, "std_leads": lead_lists(ev["dep_leads"], DISPLAY_ORDER),
+        "walls_elevated": np.asarray(ev["walls"], dtype="int64"), "pericarditis_like": pericarditis,
+        "qrs_ms": qrs, "paced": paced, "lbbb_shape": ev["lbbb"], "lbbb_shape_unknown": ev["shape_unknown"],
+        "lbbb_or_paced": ev["confounded"], "fired_lbbb_qrs": is_lbbb & ev["lbbb"],
+        "sgarbossa_points": np.asarray(ev["sg_points"], dtype="int64"), "sgarbossa_positive": ev["sgarbossa"] & is_lbbb,
+        "smith_positive": ev["smith"] & ev["confounded"],
+        "sgarbossa_concordant_ste_leads": lead_lists(ev["c1"], DISPLAY_ORDER),
+        "sgarbossa_concordant_std_leads": lead_lists(ev["c2"], DISPLAY_ORDER),
+        "sgarbossa_discordant_ste_leads": lead_lists(ev["c3"], DISPLAY_ORDER),
+        "smith_ratio_leads": lead_lists(ev["smith3"], DISPLAY_ORDER), "smith_min_ratio": smith_min,
+        "fired_sg_concordant_ste": is_lbbb & ev["c1"].any(axis=1).to_numpy(),
+        "fired_sg_concordant_std": is_lbbb & ev["c2"].any(axis=1).to_numpy(),
+        "fired_sg_discordant_ste": is_lbbb & ev["c3"].any(axis=1).to_numpy(),
+        "fired_smith_ratio": is_lbbb & ev["smith3"].any(axis=1).to_numpy(),
+        "sokolow_lyon_uv": ev["sokolow_uv"], "cornell_uv": ev["cornell_uv"], "lvh_voltage": ev["lvh"],
+        "lvh_explains": lvh_applies, "lvh_not_explained": lvh_not_explained,
+        "fired_sokolow": lvh_applies & ev["sokolow"], "fired_cornell_men": lvh_applies & ev["cornell"] & male,
+        "fired_cornell_women": lvh_applies & ev["cornell"] & ~male, "fired_lvh_proportionate": lvh_applies & is_elev,
+        "sex": np.where(female, "F", np.where(male, "M", None)), "age_years": age,
+        "leads_missing": lead_lists(missing_std, DISPLAY_ORDER), "posterior_leads_recorded": st[["V7", "V8", "V9"]].notna().any(axis=1).to_numpy(),
+        "prior_leads_known": prior_leads_known, "prior_gap_h": prior_gap, "same_as_prior": same_as_prior,
+        "prior_old": prior_old, "persistent": persistent, "new_vs_prior": new_depression,
+        "trop_max_ratio": trop_ratio, "trop_delta_ng_l": trop_delta, "trop_above_url": trop_above,
+        "trop_rising": trop_rising, "trop_raise": trop_raise,
+        "tier": tier.astype("int64"),
+        "severity": severity, "lab_confirmed": trop_raise, "lab_gap_min": np.abs(num(aligned, "trop_offset_min")),
+        "trend": trop_delta, "prior_present": has_prior, "troponin_ratio": trop_ratio,
+    }
+    return criterion_table(aligned, columns), {"st": st, "cut": ev["cut"], "st_s": ev["st_s"]}
+
+
+def _severity(pattern, ev, r, deepest, n_pattern, n_wide_dep, avr_st) -> np.ndarray:
+    """The severity score part of each pattern (module docstring), over the whole frame."""
+    with np.errstate(invalid="ignore"):
+        depth_post = np.clip(deepest / abs(r["std_posterior_v1v3"].value) - 1.0, 0.0, 1.0)
+        depth_std = np.clip(deepest / abs(r["std_alone"].value) - 1.0, 0.0, 1.0)
+        support = (ev["dominant_r"] | ev["upright_t"]).astype(float)
+        elevation = (0.4 * np.clip(ev["max_ratio"] - 1.0, 0.0, 1.0) + 0.3 * np.minimum(n_pattern, 6) / 6.0
+                     + 0.3 * ev["recip"].astype(float))
+        avr = (0.5 * np.clip(avr_st / r["avr_elevation"].value - 1.0, 0.0, 1.0)
+               + 0.5 * n_wide_dep / len(WIDESPREAD_LEADS))
+    out = np.select(
+        [pattern == P_LBBB, pattern == P_POSTERIOR, pattern == P_DEPRESSION, pattern == P_AVR, pattern == P_ELEVATION],
+        [np.maximum(0.3, ev["sg_points"] / 10.0),
+         0.4 * depth_post + 0.3 * np.minimum(n_pattern, 3) / 3.0 + 0.3 * support,
+         0.5 * depth_std + 0.5 * np.minimum(n_pattern, 6) / 6.0,
+         avr, elevation],
+        0.0,
+    )
+    return np.nan_to_num(out)
+
+
+# Thresholds and the criterion column that says each one fired (evidence `rules`, in this order).
+FIRED = (
+    ("ste_general", "cut_ste_general"), ("ste_v2v3_women", "cut_ste_v2v3_women"),
+    ("ste_v2v3_men_older", "cut_ste_v2v3_men_older"), ("ste_v2v3_men_younger", "cut_ste_v2v3_men_younger"),
+    ("ste_right_men_younger", "cut_ste_right_men_younger"), ("ste_right", "cut_ste_right"),
+    ("ste_posterior_men_younger", "cut_ste_posterior_men_younger"), ("ste_posterior", "cut_ste_posterior"),
+    ("std_reciprocal", "reciprocal"),
+    ("ste_clear_ratio", "ste_clear_ratio"), ("ste_clear_leads", "ste_clear_leads"),
+    ("diffuse_territories", "pericarditis_like"), ("pericarditis_avr_st", "pericarditis_like"),
+    ("std_posterior_v1v3", "posterior_involvement"), ("dominant_r", "fired_dominant_r"),
+    ("upright_t", "fired_upright_t"), ("std_alone", "std_alone"),
+    ("avr_elevation", "fired_avr_widespread"), ("widespread_depression", "fired_avr_widespread"),
+    ("widespread_depression_leads", "fired_avr_widespread"),
+    ("lbbb_qrs", "fired_lbbb_qrs"), ("sgarbossa_concordant_ste", "fired_sg_concordant_ste"),
+    ("sgarbossa_concordant_std_v1v3", "fired_sg_concordant_std"),
+    ("sgarbossa_discordant_ste", "fired_sg_discordant_ste"), ("sgarbossa_score", "sgarbossa_positive"),
+    ("smith_discordant_ste", "fired_smith_ratio"), ("smith_st_s_ratio", "fired_smith_ratio"),
+    ("sokolow_lyon", "fired_sokolow"), ("cornell_men", "fired_cornell_men"),
+    ("cornell_women", "fired_cornell_women"), ("lvh_proportionate", "fired_lvh_proportionate"),
+    ("prior_old_h", "prior_old"), ("trop_above_url", "trop_above_url"), ("trop_rise", "trop_rising"),
+)
+
+
+def screen_st_deviation(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | None = None, *,
+                       with_criteria: bool = False):
+    """Acute ST deviation findings for the aligned ECGs: the flagged rows of the criterion table,
+    dressed. Returns the findings frame (FINDING_COLUMNS, with territories); with_criteria, (findings,
+    criterion table)."""
+    rules = rules or load_rules()
+    if len(aligned) == 0:
+        table, findings = None, empty_findings()
+    else:
+        table, lead_frames = _criteria(aligned, leads, rules)
+        hit = np.flatnonzero(table["tier"].to_numpy() < NO_FINDING)
+        findings = _dress(aligned, table, lead_frames, hit, rules[SCREEN]) if len(hit) else empty_findings()
+    return (findings, table) if with_criteria else findings
+
+
+def _dress(aligned, table, lead_frames, hit, r) -> pd.DataFrame:
+    """Summary, caveats, evidence and score parts of the flagged rows, read off the criterion
+    table (the per-lead frames give the values the evidence lists)."""
+    col = lambda name: table[name].to_numpy()   # noqa: E731 (short reads of typed columns)
+    b = lambda name: table[name].to_numpy(dtype=bool)   # noqa: E731
     trop, trop_off, trop_url = num(aligned, "trop_ng_l"), num(aligned, "trop_offset_min"), num(aligned, "trop_url_ng_l")
-    female, male, qrs, paced, age = m["female"], m["male"], m["qrs"], m["paced"], m["age"]
-    trop_ratio, trop_delta = m["trop_ratio"], m["trop_delta"]
+    female, male, sex_unknown = sex_masks(table)
+    qrs, age, paced = num(table, "qrs_ms"), num(table, "age_years"), b("paced")
+    trop_ratio, trop_delta, prior_gap = num(table, "trop_max_ratio"), num(table, "trop_delta_ng_l"), num(table, "prior_gap_h")
+    pattern, tier, sg_points = col("pattern"), col("tier"), col("sgarbossa_points")
+    prior_ids = text(aligned, "prior_ecg_id")
     window = fmt(r["prior_old_h"].value)
-    posterior_recorded = st[["V7", "V8", "V9"]].notna().any(axis=1).to_numpy()
-    # Per flagged row, {lead: value} maps (one conversion per frame, not per row).
-    m_fired, m_recip, m_wdep, m_miss = (_row_maps(f, hit) for f in (fired_now, ev["recip_leads"], ev["wide_dep"], missing_std))
-    m_c1, m_c2, m_c3, m_s3, m_sts = (_row_maps(ev[k], hit) for k in ("c1", "c2", "c3", "smith3", "st_s"))
-    m_st, m_cut, m_post = _row_maps(st, hit), _row_maps(ev["cut"], hit), _row_maps(ev["post_leads"], hit)
+    rules_of_row = fired_rules(table, [(r[key], column) for key, column in FIRED], hit)
+    m_st, m_cut = _row_maps(lead_frames["st"], hit), _row_maps(lead_frames["cut"], hit)
+    leads_of = {name: col(name) for name in (
+        "pattern_leads", "reciprocal_leads", "widespread_depression_leads", "leads_missing", "std_v1_v3_leads",
+        "sgarbossa_concordant_ste_leads", "sgarbossa_concordant_std_leads", "sgarbossa_discordant_ste_leads",
+        "smith_ratio_leads", "territories")}
     territories_out, parts, summaries, evidence, caveats = [], [], [], [], []
     for j, i in enumerate(hit):
-        c1, c2, c3, s3 = _names(m_c1[j]), _names(m_c2[j]), _names(m_c3[j]), _names(m_s3[j])
-        miss = _names(m_miss[j])
+        lists = {name: split_leads(v[i]) for name, v in leads_of.items()}
+        fl, terr, miss = lists["pattern_leads"], lists["territories"], lists["leads_missing"]
+        c1, c2 = lists["sgarbossa_concordant_ste_leads"], lists["sgarbossa_concordant_std_leads"]
+        c3, s3 = lists["sgarbossa_discordant_ste_leads"], lists["smith_ratio_leads"]
+        recip_names, post_names = lists["reciprocal_leads"], lists["std_v1_v3_leads"]
         st_row, cut_row = m_st[j], m_cut[j]
         pat = pattern[i]
-        fl = _names(m_fired[j])
-        post_names = _names(m_post[j])
-        terr: list[str] = []
-        if pat == P_ELEVATION:
-            terr = [t for t in TERRITORY_ORDER if ev["territory"][t][i]]
-        elif pat == P_POSTERIOR:
-            terr = ["posterior"]
-        elif pat == P_LBBB:
-            # Leads of concordant or excessive discordant elevation name their group; concordant
-            # depression in V1-V3 reads as posterior, as with the plain criteria.
-            up = set(c1) | set(c3) | set(s3)
-            terr = [t for t in TERRITORY_ORDER if up & set(TERRITORY_LEADS[t]) or (t == "posterior" and c2)]
         territories_out.append(",".join(terr))
-
-        recip_names = _names(m_recip[j])
-        elev_vals = np.array([st_row[l] for l in fl], dtype=float)
-        max_st = float(np.nanmax(elev_vals)) if len(elev_vals) and not np.isnan(elev_vals).all() else np.nan
+        max_st = table["st_max_uv"].iat[i]
         leads_txt = fmt_leads(fl, DISPLAY_ORDER)
-        support = bool(ev["dominant_r"][i] or ev["upright_t"][i])
 
         if pat == P_ELEVATION:
             words = [f"ST elevation up to {fmt(max_st)} uV ({fmt(max_st / 100, 1)} mm) in {leads_txt} ({', '.join(terr)})"]
@@ -565,20 +785,20 @@ def _dress(aligned, hit, r, now, ev, pattern, tier, fired_now, missing_std, **m)
             )
             if post_names:
                 words.append(f"ST depression in {fmt_leads(post_names, DISPLAY_ORDER)} (posterior involvement)")
-            if ev["minus_avr_support"][i]:
+            if b("minus_avr_supporting")[i]:
                 words.append("-aVR agrees (supporting)")
         elif pat == P_POSTERIOR:
-            dep = float(np.nanmin([st_row[l] for l in fl]))
-            with_what = [w for w, on in (("dominant R", ev["dominant_r"][i]), ("upright T", ev["upright_t"][i])) if on]
+            with_what = [w for w, on in (("dominant R", b("posterior_dominant_r")[i]),
+                                         ("upright T", b("posterior_upright_t")[i])) if on]
             words = [
-                f"ST depression down to {fmt(dep)} uV in {leads_txt}: posterior-equivalent"
+                f"ST depression down to {fmt(-table['st_deepest_uv'].iat[i])} uV in {leads_txt}: posterior-equivalent"
                 + (f", with {' and '.join(with_what)}" if with_what else ", without dominant R or upright T")
             ]
         elif pat == P_DEPRESSION:
-            dep = float(np.nanmin([st_row[l] for l in fl]))
+            dep = -table["st_deepest_uv"].iat[i]
             words = [f"ST depression down to {fmt(dep)} uV ({fmt(dep / 100, 1)} mm) in {leads_txt}, no ST elevation"]
         elif pat == P_AVR:
-            dep_names = _names(m_wdep[j])
+            dep_names = lists["widespread_depression_leads"]
             words = [
                 f"ST elevation {fmt(st_row['aVR'])} uV in aVR with ST depression in {len(dep_names)} leads "
                 f"({fmt_leads(dep_names, DISPLAY_ORDER)}): aVR elevation with widespread depression"
@@ -593,12 +813,11 @@ def _dress(aligned, hit, r, now, ev, pattern, tier, fired_now, missing_std, **m)
             if c3:
                 crit.append(f"discordant ST elevation >= {fmt(r['sgarbossa_discordant_ste'].value)} uV in {fmt_leads(c3, DISPLAY_ORDER)}")
             if s3:
-                worst = float(np.nanmin([m_sts[j][l] for l in s3]))
-                crit.append(f"ST/S ratio down to {fmt(worst, 2)} in {fmt_leads(s3, DISPLAY_ORDER)}")
+                crit.append(f"ST/S ratio down to {fmt(table['smith_min_ratio'].iat[i], 2)} in {fmt_leads(s3, DISPLAY_ORDER)}")
             words = [
-                f"{shape}: Sgarbossa {int(ev['sg_points'][i])} points"
-                f"{' (positive)' if ev['sgarbossa'][i] else ''}, Smith-modified "
-                f"{'positive' if ev['smith'][i] else 'negative'}; " + "; ".join(crit)
+                f"{shape}: Sgarbossa {int(sg_points[i])} points"
+                f"{' (positive)' if b('sgarbossa_positive')[i] else ''}, Smith-modified "
+                f"{'positive' if b('smith_positive')[i] else 'negative'}; " + "; ".join(crit)
             ]
         else:
             words = [
@@ -613,11 +832,11 @@ def _dress(aligned, hit, r, now, ev, pattern, tier, fired_now, missing_std, **m)
             if not np.isnan(trop_delta[i]):
                 tw += f", change {'+' if trop_delta[i] >= 0 else ''}{fmt(trop_delta[i])} ng/L"
             words.append(tw)
-        if m["prior_old"][i]:
-            words.append(f"same deviation on the prior ECG {_gap_words(m['prior_gap'][i])} earlier")
-        elif m["persistent"][i]:
-            words.append(f"persistent: also on the prior ECG {_gap_words(m['prior_gap'][i])} earlier")
-        elif m["new_depression"][i]:
+        if b("prior_old")[i]:
+            words.append(f"same deviation on the prior ECG {_gap_words(prior_gap[i])} earlier")
+        elif b("persistent")[i]:
+            words.append(f"persistent: also on the prior ECG {_gap_words(prior_gap[i])} earlier")
+        elif b("new_vs_prior")[i]:
             words.append("new against the prior ECG")
         summaries.append("; ".join(words))
 
@@ -627,35 +846,35 @@ def _dress(aligned, hit, r, now, ev, pattern, tier, fired_now, missing_std, **m)
         if pat == P_LBBB:
             cav.append(CAVEAT_PACED if paced[i] else CAVEAT_LBBB.format(qrs=fmt(qrs[i])))
         elif r["lbbb_qrs"].met(qrs[i]) and pat != P_NOT_EVALUABLE:
-            cav.append((CAVEAT_WIDE_SHAPE_UNKNOWN if ev["shape_unknown"][i] else CAVEAT_WIDE_OTHER).format(qrs=fmt(qrs[i])))
-        if m["lvh_applies"][i]:
+            cav.append((CAVEAT_WIDE_SHAPE_UNKNOWN if b("lbbb_shape_unknown")[i] else CAVEAT_WIDE_OTHER).format(qrs=fmt(qrs[i])))
+        if b("lvh_explains")[i]:
             what = ("ST elevation confined to V1-V3 and proportionate to the S wave" if pat == P_ELEVATION
                     else "ST depression confined to I, aVL, V5, V6")
             cav.append(CAVEAT_LVH_EXPLAINS.format(what=what, floor=floor))
-        elif m["lvh_not_explained"][i]:
+        elif b("lvh_not_explained")[i]:
             cav.append(CAVEAT_LVH_NOT_EXPLAINED.format(what="elevation" if pat == P_ELEVATION else "depression"))
-        if m["pericarditis"][i]:
-            cav.append(CAVEAT_PERICARDITIS.format(walls=int(ev["walls"][i]), ratio=f"{r['ste_clear_ratio'].value:g}"))
+        if b("pericarditis_like")[i]:
+            cav.append(CAVEAT_PERICARDITIS.format(walls=int(col("walls_elevated")[i]), ratio=f"{r['ste_clear_ratio'].value:g}"))
         if pat in (P_DEPRESSION, P_POSTERIOR):
             cav.append(CAVEAT_SLOPE)
-        if pat == P_POSTERIOR and not posterior_recorded[i]:
+        if pat == P_POSTERIOR and not b("posterior_leads_recorded")[i]:
             cav.append(CAVEAT_POSTERIOR_LEADS)
         if pat != P_NOT_EVALUABLE:
-            if m["prior_old"][i]:
-                cav.append(CAVEAT_OLD_PRIOR.format(gap=_gap_words(m["prior_gap"][i]), window=window, floor=floor))
-            elif m["persistent"][i]:
-                cav.append(CAVEAT_PERSISTENT.format(gap=_gap_words(m["prior_gap"][i]), window=window))
-            elif m["same_as_prior"][i]:
+            if b("prior_old")[i]:
+                cav.append(CAVEAT_OLD_PRIOR.format(gap=_gap_words(prior_gap[i]), window=window, floor=floor))
+            elif b("persistent")[i]:
+                cav.append(CAVEAT_PERSISTENT.format(gap=_gap_words(prior_gap[i]), window=window))
+            elif b("same_as_prior")[i]:
                 cav.append(CAVEAT_PRIOR_GAP_UNKNOWN)
-            elif m["new_depression"][i]:
+            elif b("new_vs_prior")[i]:
                 cav.append(CAVEAT_NEW_DEPRESSION)
-            elif not m["has_prior"][i]:
+            elif not b("prior_present")[i]:
                 cav.append(CAVEAT_NO_PRIOR)
-            elif not m["prior_leads_known"][i]:
+            elif not b("prior_leads_known")[i]:
                 cav.append(CAVEAT_PRIOR_NO_LEADS)
-        if m["trop_raise"][i]:
+        if b("trop_raise")[i]:
             cav.append(CAVEAT_TROPONIN)
-        if m["sex_unknown"][i]:
+        if sex_unknown[i]:
             cav.append(CAVEAT_SEX_UNKNOWN.format(
                 v23=fmt(r["ste_v2v3_women"].value), right=fmt(r["ste_right"].value), post=fmt(r["ste_posterior"].value)))
         elif male[i] and np.isnan(age[i]):
@@ -664,43 +883,7 @@ def _dress(aligned, hit, r, now, ev, pattern, tier, fired_now, missing_std, **m)
             cav.append(CAVEAT_MISSING_LEADS.format(leads=fmt_leads(miss, DISPLAY_ORDER)))
         caveats.append(cav)
 
-        # thresholds that fired for this row
-        used = []
-        if pat == P_ELEVATION:
-            for l in fl:
-                conds, ths = m["spec"][l]
-                for c, th in zip(conds, ths):
-                    if c[i]:
-                        used.append((th, True))
-                        break
-            used.append((r["std_reciprocal"], bool(recip_names)))
-            used.append((r["ste_clear_ratio"], bool(r["ste_clear_ratio"].met(ev["max_ratio"][i]))))
-            used.append((r["ste_clear_leads"], bool(r["ste_clear_leads"].met(ev["n_leads"][i]))))
-            used.append((r["diffuse_territories"], bool(m["pericarditis"][i])))
-            used.append((r["pericarditis_avr_st"], bool(m["pericarditis"][i])))
-        used += [
-            (r["std_posterior_v1v3"], pat == P_POSTERIOR or bool(post_names and pat == P_ELEVATION)),
-            (r["dominant_r"], pat == P_POSTERIOR and bool(ev["dominant_r"][i])),
-            (r["upright_t"], pat == P_POSTERIOR and bool(ev["upright_t"][i])),
-            (r["std_alone"], pat == P_DEPRESSION),
-            (r["avr_elevation"], pat == P_AVR),
-            (r["widespread_depression"], pat == P_AVR),
-            (r["widespread_depression_leads"], pat == P_AVR),
-            (r["lbbb_qrs"], pat == P_LBBB and ev["lbbb"][i]),
-            (r["sgarbossa_concordant_ste"], pat == P_LBBB and bool(c1)),
-            (r["sgarbossa_concordant_std_v1v3"], pat == P_LBBB and bool(c2)),
-            (r["sgarbossa_discordant_ste"], pat == P_LBBB and bool(c3)),
-            (r["sgarbossa_score"], pat == P_LBBB and bool(ev["sgarbossa"][i])),
-            (r["smith_discordant_ste"], pat == P_LBBB and bool(s3)),
-            (r["smith_st_s_ratio"], pat == P_LBBB and bool(s3)),
-            (r["sokolow_lyon"], bool(m["lvh_applies"][i]) and bool(ev["sokolow"][i])),
-            (r["cornell_men"], bool(m["lvh_applies"][i]) and bool(ev["cornell"][i]) and male[i]),
-            (r["cornell_women"], bool(m["lvh_applies"][i]) and bool(ev["cornell"][i]) and not male[i]),
-            (r["lvh_proportionate"], bool(m["lvh_applies"][i]) and pat == P_ELEVATION),
-            (r["prior_old_h"], bool(m["prior_old"][i])),
-            (r["trop_above_url"], bool(m["trop_above"][i])),
-            (r["trop_rise"], bool(m["trop_rising"][i])),
-        ]
+        confounded = b("lbbb_or_paced")[i]
         st_by_lead = {l: st_row[l] for l in ALL_LEADS if not np.isnan(st_row[l])}
         evidence.append(
             {
@@ -709,31 +892,31 @@ def _dress(aligned, hit, r, now, ev, pattern, tier, fired_now, missing_std, **m)
                     "st_j_uv": st_by_lead,
                     "leads_meeting": fl,
                     "cut_points_uv": {l: cut_row[l] for l in fl} if pat == P_ELEVATION else {},
-                    "max_st_over_cut": ev["max_ratio"][i] if pat == P_ELEVATION else None,
+                    "max_st_over_cut": table["ste_max_over_cut"].iat[i] if pat == P_ELEVATION else None,
                     "reciprocal_leads": recip_names,
                     "territories": terr,
-                    "posterior_by_v1_v3_depression": bool(ev["post_any"][i]),
-                    "posterior_dominant_r": bool(ev["dominant_r"][i]),
-                    "posterior_upright_t": bool(ev["upright_t"][i]),
-                    "minus_avr_supporting": bool(ev["minus_avr_support"][i]),
-                    "pericarditis_like": bool(m["pericarditis"][i]),
+                    "posterior_by_v1_v3_depression": bool(b("std_v1_v3")[i]),
+                    "posterior_dominant_r": bool(b("posterior_dominant_r")[i]),
+                    "posterior_upright_t": bool(b("posterior_upright_t")[i]),
+                    "minus_avr_supporting": bool(b("minus_avr_supporting")[i]),
+                    "pericarditis_like": bool(b("pericarditis_like")[i]),
                     "sex": "F" if female[i] else ("M" if male[i] else None),
                     "age_years": age[i],
                     "qrs_ms": qrs[i],
                     "paced": bool(paced[i]),
-                    "lbbb_shape": bool(ev["lbbb"][i]),
-                    "sgarbossa_points": int(ev["sg_points"][i]) if ev["confounded"][i] else None,
-                    "smith_modified_positive": bool(ev["smith"][i]) if ev["confounded"][i] else None,
-                    "sokolow_lyon_uv": ev["sokolow_uv"][i],
-                    "cornell_uv": ev["cornell_uv"][i],
-                    "lvh_voltage": bool(ev["lvh"][i]),
-                    "lvh_explains": bool(m["lvh_applies"][i]),
-                    "prior_ecg_id": m["prior_ids"][i],
-                    "prior_gap_h": m["prior_gap"][i],
-                    "same_as_prior": bool(m["same_as_prior"][i]),
-                    "prior_old": bool(m["prior_old"][i]),
-                    "persistent": bool(m["persistent"][i]),
-                    "new_vs_prior": bool(m["new_depression"][i]),
+                    "lbbb_shape": bool(b("lbbb_shape")[i]),
+                    "sgarbossa_points": int(sg_points[i]) if confounded else None,
+                    "smith_modified_positive": bool(b("smith_positive")[i]) if confounded else None,
+                    "sokolow_lyon_uv": table["sokolow_lyon_uv"].iat[i],
+                    "cornell_uv": table["cornell_uv"].iat[i],
+                    "lvh_voltage": bool(b("lvh_voltage")[i]),
+                    "lvh_explains": bool(b("lvh_explains")[i]),
+                    "prior_ecg_id": prior_ids[i],
+                    "prior_gap_h": prior_gap[i],
+                    "same_as_prior": bool(b("same_as_prior")[i]),
+                    "prior_old": bool(b("prior_old")[i]),
+                    "persistent": bool(b("persistent")[i]),
+                    "new_vs_prior": bool(b("new_vs_prior")[i]),
                     "trop_ng_l": trop[i],
                     "trop_url_ng_l": trop_url[i],
                     "trop_max_ratio": trop_ratio[i],
@@ -741,38 +924,20 @@ def _dress(aligned, hit, r, now, ev, pattern, tier, fired_now, missing_std, **m)
                     "trop_offset_min": trop_off[i],
                     "leads_missing": miss,
                 },
-                "rules": fired(*used),
+                "rules": rules_of_row[j],
             }
         )
-        if pat == P_LBBB:
-            sev = max(0.3, ev["sg_points"][i] / 10.0)
-        elif pat == P_NOT_EVALUABLE:
-            sev = 0.0
-        elif pat in (P_POSTERIOR, P_DEPRESSION):
-            deepest = max(abs(st_row[l]) for l in fl)
-            th = r["std_posterior_v1v3"] if pat == P_POSTERIOR else r["std_alone"]
-            depth = min(max(deepest / abs(th.value) - 1.0, 0.0), 1.0)
-            if pat == P_POSTERIOR:
-                sev = 0.4 * depth + 0.3 * min(len(fl), 3) / 3.0 + 0.3 * float(support)
-            else:
-                sev = 0.5 * depth + 0.5 * min(len(fl), 6) / 6.0
-        elif pat == P_AVR:
-            n_dep = len(_names(m_wdep[j]))
-            sev = 0.5 * min(max(st_row["aVR"] / r["avr_elevation"].value - 1.0, 0.0), 1.0) + 0.5 * n_dep / len(WIDESPREAD_LEADS)
-        else:
-            excess = float(ev["max_ratio"][i]) - 1.0
-            sev = 0.4 * min(max(excess, 0.0), 1.0) + 0.3 * min(len(fl), 6) / 6.0 + 0.3 * float(ev["recip"][i])
         parts.append(
             score_parts(
-                severity=sev,
-                lab_confirmed=bool(m["trop_raise"][i]),
+                severity=table["severity"].iat[i],
+                lab_confirmed=bool(b("lab_confirmed")[i]),
                 lab_gap_min=trop_off[i],
                 trend=trop_delta[i],
-                prior_present=m["has_prior"][i],
+                prior_present=bool(b("prior_present")[i]),
                 troponin_ratio=trop_ratio[i],
                 max_st_uv=max_st,
                 leads_meeting=len(fl),
-                reciprocal=int(bool(ev["recip"][i])),
+                reciprocal=int(bool(b("reciprocal")[i])),
             )
         )
 
@@ -793,8 +958,3 @@ def _row_maps(frame: pd.DataFrame, rows: np.ndarray) -> list[dict[str, Any]]:
     """The given positional rows of a lead frame as {lead: value} dicts."""
     cols = [str(c) for c in frame.columns]
     return [dict(zip(cols, vals)) for vals in frame.to_numpy()[rows].tolist()]
-
-
-def _names(row: dict[str, Any]) -> list[str]:
-    """Leads whose entry is true (values of a bool frame's row map)."""
-    return [lead for lead, v in row.items() if v is True]

@@ -126,3 +126,46 @@ def test_site_override_version_reaches_the_findings():
     qt = out[out["screen"] == "long_qt"]
     assert qt["rule_version"].str.startswith("long_qt/1.1.0+site.").all()
     assert (out.loc[out["screen"] != "long_qt", "rule_version"].str.contains(r"\+")).sum() == 0
+
+
+# ---------------------------------------------------------------- one shape: the criterion table
+def test_criterion_table_has_one_row_per_ecg_and_its_documented_columns(screen):
+    # screens/_table.py: one row per aligned ECG, in order, each column documented in the
+    # module docstring with its unit and source.
+    import sys
+
+    from screens._table import ID_COLUMNS, SCORE_COLUMNS, documented_columns
+
+    name, fn = screen
+    aligned, leads = busy_night()
+    _, table = fn(aligned, leads, load_rules(), with_criteria=True)
+    assert table["ecg_id"].tolist() == aligned["ecg_id"].tolist()
+    documented = documented_columns(sys.modules[fn.__module__].__doc__)
+    assert list(table.columns) == list(documented), f"{name}: criterion table and its docstring differ"
+    assert set(ID_COLUMNS + SCORE_COLUMNS + ["tier"]) <= set(table.columns)
+    assert all(unit and source for unit, source in documented.values())
+
+
+def test_findings_are_the_flagged_rows_of_the_criterion_table(screen):
+    # The text is built from the table: tiers agree, and every rule listed in the evidence
+    # is one whose criterion column is true in that row (never re-evaluated).
+    name, fn = screen
+    aligned, leads = busy_night()
+    found, table = fn(aligned, leads, load_rules(), with_criteria=True)
+    flagged = table[table["tier"] < 5]
+    assert flagged["ecg_id"].tolist() == found["ecg_id"].tolist()
+    assert flagged["tier"].tolist() == found["tier"].tolist()
+    module = __import__(fn.__module__, fromlist=["FIRED"])
+    column_of = {}
+    for key, column in module.FIRED:
+        column_of.setdefault(key, []).append(column)
+    for (_, row), evidence in zip(flagged.iterrows(), found["evidence"]):
+        for rule in json.loads(evidence)["rules"]:
+            assert any(bool(row[c]) for c in column_of[rule["key"]]), (name, rule["key"])
+
+
+def test_run_screens_returns_every_criterion_table():
+    aligned, leads = busy_night()
+    findings, tables = run_screens(aligned, leads, load_rules(), with_criteria=True)
+    assert sorted(tables) == sorted(SCREENS) and all(len(t) == len(aligned) for t in tables.values())
+    assert_frame_equal(findings, run_screens(aligned, leads, load_rules()))
