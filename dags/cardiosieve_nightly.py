@@ -76,26 +76,18 @@ PARAMS = {
 # ---------------------------------------------------------------------------------------------
 # Helpers: run inside tasks only
 
-def bad_data_errors() -> tuple[type[Exception], ...]:
-    """Failures a retry cannot fix: the input or the configuration is wrong."""
-    from pipeline.config import ConfigError
-    from pipeline.load import LakeError
-    from pipeline.normalise import ContractError
-    from pipeline.quality import QualityGateError
-    from pipeline.run import RunError
-
-    return ConfigError, ContractError, LakeError, QualityGateError, RunError
-
-
 def call_stage(fn, *args, **kwargs):
-    """Run one pipeline stage; bad data becomes AirflowFailException (no retries) with the
-    stage's one-line message, which names files, tables, columns, checks and counts only.
-    Anything else propagates and Airflow retries it with back-off."""
+    """Run one pipeline stage; bad data (pipeline.errors.BadInputError) becomes
+    AirflowFailException (no retries) with the stage's one-line message, which names files,
+    tables, columns, checks and counts only. Anything else propagates and Airflow retries it with
+    back-off: an OSError with errno (a flaky mount), a database briefly away. A store written by a
+    newer cardiosieve (StoreSchemaError) is bad input too: retrying cannot mend it."""
     from airflow.sdk.exceptions import AirflowFailException
+    from pipeline.errors import BadInputError
 
     try:
         return fn(*args, **kwargs)
-    except bad_data_errors() as exc:
+    except BadInputError as exc:
         raise AirflowFailException(f"{type(exc).__name__}: {exc}") from None
 
 

@@ -28,6 +28,7 @@ import numpy as np
 import pandas as pd
 
 from pipeline.config import Settings
+from pipeline.frames import whole_years
 
 ANALYTE_PREFIX = {"potassium": "k", "magnesium": "mg", "calcium": "ca"}
 PRIOR_COLUMNS = ["heart_rate_bpm", "rr_ms", "pr_ms", "qrs_ms", "qt_ms"]
@@ -198,9 +199,7 @@ def _medication(anchors, medication, settings: Settings, lookback) -> pd.DataFra
 def _demographics(anchors: pd.DataFrame, patient: pd.DataFrame) -> pd.DataFrame:
     """Sex and whole years of age at the ECG (NaN when the birth date is unknown)."""
     d = anchors.merge(patient[["patient_id", "sex", "birth_date"]], on="patient_id", how="left")
-    at, born = d["acquired_at"], d["birth_date"]
-    had_birthday = (at.dt.month > born.dt.month) | ((at.dt.month == born.dt.month) & (at.dt.day >= born.dt.day))
-    d["age_years"] = (at.dt.year - born.dt.year - (~had_birthday).astype(float)).where(born.notna())
+    d["age_years"] = whole_years(d["birth_date"], d["acquired_at"])
     return d[["ecg_id", "sex", "age_years"]]
 
 

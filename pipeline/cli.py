@@ -11,6 +11,7 @@ import argparse
 import sys
 
 from pipeline import CAUTION
+from pipeline.errors import BadInputError
 
 EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT = 0, 1, 2
 
@@ -71,7 +72,7 @@ def main(argv: list[str] | None = None) -> int:
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return EXIT_OK
     except Exception as exc:          # classify; never print row values
-        if _is_bad_input(exc):
+        if isinstance(exc, BadInputError):
             print(f"cardiosieve: error: {exc}", file=sys.stderr)
             return EXIT_BAD_INPUT
         if isinstance(exc, OSError) and exc.errno is not None:   # the system, not the data: retry
@@ -85,12 +86,6 @@ def main(argv: list[str] | None = None) -> int:
         if os.environ.get("CARDIOSIEVE_DEBUG"):
             raise
         return EXIT_INTERNAL
-
-
-def _is_bad_input(exc: Exception) -> bool:
-    names = {"ConfigError", "ContractError", "LakeError", "RunError", "QualityGateError", "ReviewError",
-             "StoreSchemaError"}
-    return any(cls.__name__ in names for cls in type(exc).__mro__)
 
 
 def _cmd_run(args) -> int:

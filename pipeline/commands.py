@@ -92,7 +92,7 @@ def _url(args, must_exist: bool = True) -> str | None:
 
 
 def handle_review(args) -> int:
-    from pipeline.store import import_reviews_csv, open_store, record_review
+    from pipeline.store import StoreSchemaError, import_reviews_csv, open_store, record_review
 
     url = _url(args)
     if url is None:
@@ -102,6 +102,8 @@ def handle_review(args) -> int:
             return _fail("review: give either ITEM_ID --outcome ... or --import-csv FILE, not both")
         try:
             counts = import_reviews_csv(open_store(url), args.import_csv, timezone=args.timezone)
+        except StoreSchemaError:           # a ValueError too, but the CLI's to report (exit 2)
+            raise
         except (OSError, ValueError) as exc:
             return _fail(f"review: {exc}")
         print(f"reviews read {counts['read']}, imported {counts['imported']}, "
@@ -116,6 +118,8 @@ def handle_review(args) -> int:
     try:
         at = pd.Timestamp(args.at) if args.at else pd.Timestamp.now(tz="UTC")   # time of entry
         recorded = record_review(open_store(url), args.item_id, args.outcome, args.role, args.note, at)
+    except StoreSchemaError:
+        raise
     except ValueError as exc:
         return _fail(str(exc))
     print(f"item {args.item_id}: " + ("review recorded, item closed" if recorded else "review already recorded"))

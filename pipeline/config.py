@@ -11,22 +11,22 @@ import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from pipeline.codes import (LOINC_CALCIUM_MASS, LOINC_CALCIUM_MOLAR, LOINC_MAGNESIUM_MASS, LOINC_MAGNESIUM_MOLAR,
+                            LOINC_POTASSIUM_BLOOD, LOINC_POTASSIUM_SERUM)
 from pipeline.contract import AMPLITUDE_UNITS, TABLES, TIME_UNITS
+from pipeline.errors import BadInputError
 
 
-class ConfigError(ValueError):
+class ConfigError(BadInputError):
     """The site configuration is unusable; the message says which setting and why."""
 
 
-# LOINC codes (each to be confirmed against the site's own catalogue). 19123-9 magnesium
-# [mass/volume] in serum or plasma: as listed in hospital laboratory test catalogues (checked).
-# From memory: 2823-3 potassium [moles/volume] in serum or plasma; 6298-4 potassium in blood;
-# 2601-3 magnesium [moles/volume];
-# 17861-6 calcium [mass/volume] in serum or plasma; 2000-8 calcium [moles/volume].
+# LOINC codes read as each analyte by default (pipeline/codes.py names them; sites confirm
+# each against their own catalogue).
 DEFAULT_ANALYTES = {
-    "potassium": ("2823-3", "6298-4"),
-    "magnesium": ("19123-9", "2601-3"),
-    "calcium": ("17861-6", "2000-8"),
+    "potassium": (LOINC_POTASSIUM_SERUM, LOINC_POTASSIUM_BLOOD),
+    "magnesium": (LOINC_MAGNESIUM_MASS, LOINC_MAGNESIUM_MOLAR),
+    "calcium": (LOINC_CALCIUM_MASS, LOINC_CALCIUM_MOLAR),
 }
 
 DEFAULT_WINDOWS = {

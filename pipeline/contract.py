@@ -13,8 +13,13 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
-STANDARD_LEADS = ("I", "II", "III", "aVR", "aVL", "aVF", "V1", "V2", "V3", "V4", "V5", "V6")
-EXTRA_LEADS = ("V3R", "V4R", "V7", "V8", "V9")
+# Lead names: the one place they are spelt (screens/_leads.py and the generator build on these).
+LIMB_LEADS = ("I", "II", "III", "aVR", "aVL", "aVF")
+PRECORDIAL_LEADS = ("V1", "V2", "V3", "V4", "V5", "V6")
+RIGHT_LEADS = ("V3R", "V4R")                 # right-sided precordial
+POSTERIOR_LEADS = ("V7", "V8", "V9")
+STANDARD_LEADS = LIMB_LEADS + PRECORDIAL_LEADS   # the 12-lead ECG
+EXTRA_LEADS = RIGHT_LEADS + POSTERIOR_LEADS
 ALL_LEADS = STANDARD_LEADS + EXTRA_LEADS
 
 # Reject reason codes: one place, used by the loader and documented in docs/data-contract.md.

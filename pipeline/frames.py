@@ -31,3 +31,13 @@ def positions(values: pd.Series, keys: pd.Series | np.ndarray) -> np.ndarray:
     if ref.type != arr.type:
         ref = ref.cast(arr.type)
     return pc.index_in(arr, value_set=ref).fill_null(-1).to_numpy(zero_copy_only=False).astype(np.int64)
+
+
+def whole_years(born: pd.Series, at: pd.Series) -> pd.Series:
+    """Age in whole years at `at` of someone born on `born` (both datetime Series, same index):
+    the difference of the years, less one before that year's birthday (one born on 29 February
+    has it on 1 March in other years). Float; NaN where either is missing. Only the calendar
+    fields are read, so a tz-aware `at` and a naive birth date mix."""
+    had_birthday = (at.dt.month > born.dt.month) | ((at.dt.month == born.dt.month) & (at.dt.day >= born.dt.day))
+    years = at.dt.year - born.dt.year - (~had_birthday).astype(float)
+    return years.astype(float).where(born.notna() & at.notna())

@@ -26,6 +26,7 @@ import pyarrow.parquet as pq
 
 from pipeline import contract as c
 from pipeline.config import Settings
+from pipeline.errors import BadInputError
 from pipeline.normalise import (FILE_COLUMN, ContractError, Normalised, empty_rejects, empty_table,
                                 normalise_table, reject_duplicates)
 
@@ -37,7 +38,7 @@ def _corrupt(exc: BaseException) -> bool:
     return isinstance(exc, pa.ArrowException) or (isinstance(exc, OSError) and exc.errno is None)
 
 
-class LakeError(ValueError):
+class LakeError(BadInputError):
     """The lake cannot be read as the contract describes (missing table, unreadable file)."""
 
 

@@ -15,10 +15,11 @@ import pandas as pd
 
 from pipeline import contract as c
 from pipeline.config import Settings
+from pipeline.errors import BadInputError
 from pipeline.frames import isin
 
 
-class ContractError(ValueError):
+class ContractError(BadInputError):
     """A whole table breaks the contract (e.g. a required column is missing)."""
 
 

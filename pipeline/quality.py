@@ -28,7 +28,6 @@ import copy
 import html
 import json
 import logging
-import math
 import warnings
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -39,6 +38,9 @@ import pandas as pd
 
 from pipeline import contract as c
 from pipeline.config import Settings
+from pipeline.errors import BadInputError
+from pipeline.files import write_text_atomic
+from pipeline.jsontext import plain
 from pipeline.normalise import FILE_COLUMN
 
 log = logging.getLogger(__name__)
@@ -85,7 +87,7 @@ LEAD_RANGES = {
 }
 
 
-class QualityGateError(Exception):
+class QualityGateError(BadInputError):
     """A critical quality check failed; the message names tables, checks and counts only."""
 
     def __init__(self, failures: list[str]):
@@ -513,23 +515,11 @@ def report_dict(result: QualityResult) -> dict:
         tables[name] = {"rows_in": rows_in, "rows_rejected": n_rej,
                         "pct_rejected": round(100.0 * n_rej / rows_in, 2) if rows_in else 0.0,
                         "rows_flagged": int(result.flagged["table"].eq(name).sum())}
-    checks = [{k: _plain(v) for k, v in rec.items()} for rec in result.checks.to_dict("records")]
+    checks = plain(result.checks.to_dict("records"))
     return {"report": "cardiosieve data quality", "privacy": PRIVACY_NOTE,
             "run_end": None if result.run_end is None else result.run_end.isoformat(),
             "passed": result.passed, "critical_failures": list(result.critical_failures),
             "tables": tables, "checks": checks}
-
-
-def _plain(v):
-    if v is pd.NA or (isinstance(v, float) and math.isnan(v)):
-        return None
-    if isinstance(v, (np.integer,)):
-        return int(v)
-    if isinstance(v, (np.floating,)):
-        return float(v)
-    if isinstance(v, np.bool_):
-        return bool(v)
-    return v
 
 
 def write_report(result: QualityResult, out_dir) -> dict[str, str]:
@@ -538,8 +528,8 @@ def write_report(result: QualityResult, out_dir) -> dict[str, str]:
     out.mkdir(parents=True, exist_ok=True)
     data = report_dict(result)
     paths = {"json": str(out / "quality.json"), "html": str(out / "quality.html")}
-    Path(paths["json"]).write_text(json.dumps(data, indent=2), encoding="utf-8")
-    Path(paths["html"]).write_text(_html(data), encoding="utf-8")
+    write_text_atomic(json.dumps(data, indent=2), paths["json"])
+    write_text_atomic(_html(data), paths["html"])
     return paths
 
 

@@ -7,8 +7,6 @@ of the same interval rewrites the same files.
 """
 from __future__ import annotations
 
-import json
-import os
 import time
 from datetime import datetime
 from pathlib import Path
@@ -18,6 +16,8 @@ import pandas as pd
 from pipeline import CAUTION
 from pipeline import contract as c
 from pipeline.config import Settings, load_settings
+from pipeline.errors import BadInputError
+from pipeline.files import write_json_atomic, write_parquet_atomic
 from pipeline.frames import isin
 
 STAGE_DIR = "_stage"
@@ -26,7 +26,7 @@ CHECKED_TABLES = ("ecg", "ecg_lead", "lab", "patient", "medication")   # what th
 HISTORY_COLUMNS = ["ecg_id", "patient_id", "acquired_at", "heart_rate_bpm", "rr_ms", "pr_ms", "qrs_ms", "qt_ms"]
 
 
-class RunError(ValueError):
+class RunError(BadInputError):
     """The run cannot go on with this input or configuration (exit code 2)."""
 
 
@@ -53,21 +53,6 @@ def stage_dir(out: str | Path, lo: pd.Timestamp, hi: pd.Timestamp) -> Path:
     d = Path(out) / STAGE_DIR / f"{lo:%Y%m%dT%H%M%SZ}_{hi:%Y%m%dT%H%M%SZ}"
     d.mkdir(parents=True, exist_ok=True)
     return d
-
-
-def write_parquet(df: pd.DataFrame, path: Path) -> Path:
-    """Write atomically: a temporary file in the same folder, then rename over the target."""
-    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
-    df.to_parquet(tmp, index=False)
-    os.replace(tmp, path)
-    return path
-
-
-def write_json(obj: dict, path: Path) -> Path:
-    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
-    tmp.write_text(json.dumps(obj, indent=2, sort_keys=True, default=str), encoding="utf-8")
-    os.replace(tmp, path)
-    return path
 
 
 # ---------------------------------------------------------------------------------------------
@@ -100,23 +85,23 @@ def stage_load(lake, out, start, end, config=None, settings: Settings | None = N
     ecg_history = pd.concat([history.clean, night.clean], ignore_index=True)
 
     loaded = {"ecg": night, "ecg_history": history, "lab": lab, "patient": patient, "medication": medication}
-    write_parquet(night.clean, d / "ecg.parquet")
-    write_parquet(ecg_history, d / "ecg_history.parquet")
-    write_parquet(lab.clean, d / "lab.parquet")
-    write_parquet(patient.clean, d / "patient.parquet")
+    write_parquet_atomic(night.clean, d / "ecg.parquet")
+    write_parquet_atomic(ecg_history, d / "ecg_history.parquet")
+    write_parquet_atomic(lab.clean, d / "lab.parquet")
+    write_parquet_atomic(patient.clean, d / "patient.parquet")
     has_medication = (Path(lake) / "medication").is_dir()
     if has_medication:
-        write_parquet(medication.clean, d / "medication.parquet")
+        write_parquet_atomic(medication.clean, d / "medication.parquet")
     elif (d / "medication.parquet").exists():
         (d / "medication.parquet").unlink()
     # The night's leads now (the quality gate checks them); prior ECGs' leads after alignment.
     leads = read_table(lake, c.ECG_LEAD, settings, scope="night", keep={"ecg_id": night.clean["ecg_id"].tolist()},
                        days=_with_slack(set(night.clean["acquired_at"].dt.strftime("%Y-%m-%d").unique())))
     loaded["ecg_lead"] = leads
-    write_parquet(leads.clean, d / "ecg_lead.parquet")
+    write_parquet_atomic(leads.clean, d / "ecg_lead.parquet")
     rejects = pd.concat([night.rejects, history.rejects, lab.rejects, patient.rejects,
                          medication.rejects, leads.rejects], ignore_index=True)
-    write_parquet(rejects, d / "rejects.parquet")
+    write_parquet_atomic(rejects, d / "rejects.parquet")
     counts = {name: {"rows_in": t.rows_in, "accepted": len(t.clean), "rejected": len(t.rejects),
                      "files": t.files} for name, t in loaded.items()}
     return {"interval": [lo.isoformat(), hi.isoformat()], "stage_dir": str(d), "tables": counts,
@@ -134,8 +119,8 @@ def _load_prior_leads(lake, d: Path, aligned: pd.DataFrame, settings: Settings) 
     days = _with_slack(set(priors["prior_acquired_at"].dt.strftime("%Y-%m-%d").unique()))
     got = read_table(lake, c.ECG_LEAD, settings, scope="window", keep={"ecg_id": priors["prior_ecg_id"].tolist()},
                      days=days)
-    write_parquet(got.clean, d / "prior_lead.parquet")
-    write_parquet(got.rejects, d / "rejects_prior_lead.parquet")
+    write_parquet_atomic(got.clean, d / "prior_lead.parquet")
+    write_parquet_atomic(got.rejects, d / "rejects_prior_lead.parquet")
     return len(got.clean)
 
 
@@ -185,8 +170,8 @@ def stage_align(out, start, end, config=None, settings: Settings | None = None, 
     history = history[~history["ecg_id"].isin(removed)]   # night ECGs the quality gate removed are no baseline
     aligned = align(ecg, history, read_stage(d, "lab"), read_stage(d, "patient"), read_stage(d, "medication"), settings,
                     lab_rejects=_gate_lab_rejects(d))
-    write_parquet(aligned, d / "aligned.parquet")
-    write_parquet(aligned, Path(out) / "aligned.parquet")
+    write_parquet_atomic(aligned, d / "aligned.parquet")
+    write_parquet_atomic(aligned, Path(out) / "aligned.parquet")
     prior_leads = 0
     if lake is not None:
         prior_leads = _load_prior_leads(lake, d, aligned, settings)
@@ -251,8 +236,8 @@ def stage_quality(lake, out, start, end, config=None, settings: Settings | None 
     paths = write_report(result, out)
     if result.passed:
         for n, df in result.clean.items():
-            write_parquet(df, d / f"{n}.checked.parquet")
-        write_parquet(result.rejects, d / "rejects_quality.parquet")
+            write_parquet_atomic(df, d / f"{n}.checked.parquet")
+        write_parquet_atomic(result.rejects, d / "rejects_quality.parquet")
     checks = result.checks
     summary = {"checks": int(len(checks)), "failed": int((checks["passed"] == False).sum()),   # noqa: E712
                "warnings": int(((checks["passed"] == False) & (checks["severity"] == "warning")).sum()),  # noqa: E712
@@ -287,7 +272,7 @@ def stage_screen(out, start, end, config=None, settings: Settings | None = None)
     leads = [x for x in (read_stage(d, "ecg_lead"), read_stage(d, "prior_lead")) if x is not None]
     leads = pd.concat(leads, ignore_index=True) if leads else empty_table(c.ECG_LEAD)
     findings = run_screens(pd.read_parquet(d / "aligned.parquet"), leads, rules)
-    write_parquet(findings, d / "findings.parquet")
+    write_parquet_atomic(findings, d / "findings.parquet")
     by = findings.groupby(["screen", "tier"]).size()
     counts: dict[str, dict[str, int]] = {}
     for (screen, tier), n in by.items():
@@ -320,7 +305,7 @@ def stage_worklist(out, start, end, config=None, db=None, settings: Settings | N
         engine.dispose()
     ranked = ranked.sort_values("rank", kind="stable") if "rank" in ranked.columns else ranked
     ranked.attrs["caution"] = CAUTION                      # travels in the Parquet file's metadata
-    path = worklist.write_parquet_atomic(ranked, Path(out) / "worklist.parquet")
+    path = write_parquet_atomic(ranked, Path(out) / "worklist.parquet")
     active = ranked[ranked["status"].isin(worklist.ACTIVE_STATUSES)] if len(ranked) else ranked
     return {"items_tonight": int(len(items)), "db_counts": db_counts, "path": str(path),
             "by_screen": {k: int(v) for k, v in active.groupby("screen").size().items()} if len(active) else {}}
@@ -360,14 +345,14 @@ def stage_finish(out, start, end, summary: dict, settings: Settings | None = Non
     rejects = pd.concat([all_rejects(d) for d in dirs], ignore_index=True)
     aligned = [pd.read_parquet(d / "aligned.parquet") for d in dirs]
     out = Path(out)
-    write_parquet(rejects, out / "rejects.parquet")
-    write_parquet(pd.concat(aligned, ignore_index=True) if len(aligned) > 1 else aligned[0],
+    write_parquet_atomic(rejects, out / "rejects.parquet")
+    write_parquet_atomic(pd.concat(aligned, ignore_index=True) if len(aligned) > 1 else aligned[0],
                   out / "aligned.parquet")
     summary = {**summary, "interval": [lo.isoformat(), hi.isoformat()], "config": settings.source,
                "caution": CAUTION, "rejects_by_reason": _reasons(rejects)}
     summary["outputs"] = {"worklist": summary["worklist"]["path"], "aligned": str(out / "aligned.parquet"),
                           "rejects": str(out / "rejects.parquet"), "summary": str(out / "run_summary.json")}
-    write_json(summary, out / "run_summary.json")
+    write_json_atomic(summary, out / "run_summary.json")
     return summary
 
 

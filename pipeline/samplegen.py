@@ -39,6 +39,10 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
+from pipeline.codes import (LOINC_CALCIUM_MASS, LOINC_CREATININE, LOINC_GLUCOSE, LOINC_HAEMOGLOBIN,
+                            LOINC_MAGNESIUM_MASS, LOINC_POTASSIUM_SERUM, LOINC_SODIUM, LOINC_TROPONIN_I_HS)
+from pipeline.contract import EXTRA_LEADS, POSTERIOR_LEADS, RIGHT_LEADS, STANDARD_LEADS
+
 HOSPITAL = "Fernhallow General Infirmary"      # invented; not a real place
 PATIENT_PREFIX = "FGI-"
 ECG_PREFIX = "FGI-E"
@@ -52,15 +56,8 @@ US_PER_DAY = 24 * US_PER_H
 PLANTED_FRACTION = 0.04      # per abnormal kind: 3-5 % of patients per kind (sample-lake design)
 CONTROL_FRACTION = 0.01      # near-miss controls (kind "normal", no finding expected)
 
-# ---------------------------------------------------------------- codes and units (one place)
-LOINC_POTASSIUM = "2823-3"    # Potassium [Moles/volume] in Serum or Plasma
-LOINC_MAGNESIUM = "19123-9"   # Magnesium [Mass/volume] in Serum or Plasma
-LOINC_CALCIUM = "17861-6"     # Calcium [Mass/volume] in Serum or Plasma
-LOINC_TROPONIN_HS = "89579-7"  # Troponin I.cardiac [Mass/volume], high-sensitivity method
-LOINC_SODIUM = "2951-2"       # Sodium [Moles/volume] in Serum or Plasma
-LOINC_CREATININE = "2160-0"   # Creatinine [Mass/volume] in Serum or Plasma
-LOINC_GLUCOSE = "2345-7"      # Glucose [Mass/volume] in Serum or Plasma
-LOINC_HAEMOGLOBIN = "718-7"   # Hemoglobin [Mass/volume] in Blood
+# ---------------------------------------------------------------- codes and units
+# LOINC codes: pipeline/codes.py; lead names: pipeline/contract.py.
 
 TROPONIN_URL_NG_L = 26.0      # example 99th centile written to site.toml; sites set their own
 
@@ -68,14 +65,14 @@ TROPONIN_URL_NG_L = 26.0      # example 99th centile written to site.toml; sites
 # exported in mg/dL on purpose so the loader's molar-mass conversion is exercised
 # (Mg 1.9-2.4 mg/dL = 0.78-0.99 mmol/L; Ca 8.9-10.2 mg/dL = 2.22-2.55 mmol/L, docs/references.md).
 ANALYTES = {
-    "potassium": (LOINC_POTASSIUM, "mmol/L", 3.6, 4.2, 5.0, 1),
+    "potassium": (LOINC_POTASSIUM_SERUM, "mmol/L", 3.6, 4.2, 5.0, 1),
     "sodium": (LOINC_SODIUM, "mmol/L", 135.5, 140.0, 144.4, 0),
     "creatinine": (LOINC_CREATININE, "mg/dL", 0.60, 0.85, 1.20, 2),
     "glucose": (LOINC_GLUCOSE, "mg/dL", 72.0, 95.0, 140.0, 0),
     "haemoglobin": (LOINC_HAEMOGLOBIN, "g/dL", 11.8, 13.8, 16.5, 1),
-    "magnesium": (LOINC_MAGNESIUM, "mg/dL", 1.9, 2.1, 2.4, 1),
-    "calcium": (LOINC_CALCIUM, "mg/dL", 8.9, 9.5, 10.2, 1),
-    "troponin": (LOINC_TROPONIN_HS, "ng/L", 2.0, 5.0, 18.0, 0),
+    "magnesium": (LOINC_MAGNESIUM_MASS, "mg/dL", 1.9, 2.1, 2.4, 1),
+    "calcium": (LOINC_CALCIUM_MASS, "mg/dL", 8.9, 9.5, 10.2, 1),
+    "troponin": (LOINC_TROPONIN_I_HS, "ng/L", 2.0, 5.0, 18.0, 0),
 }
 ANALYTE_KEYS = list(ANALYTES)
 A = {k: i for i, k in enumerate(ANALYTE_KEYS)}
@@ -89,10 +86,8 @@ PANEL_P = {"potassium": 1.0, "sodium": 1.0, "creatinine": 0.95, "glucose": 0.6,
 BACKGROUND_P = {"potassium": 0.9, "sodium": 1.0, "creatinine": 1.0, "glucose": 0.5,
                 "haemoglobin": 0.9, "magnesium": 0.2, "calcium": 0.3}
 
-LEADS = ["I", "II", "III", "aVR", "aVL", "aVF", "V1", "V2", "V3", "V4", "V5", "V6"]
-EXTRA_LEADS = ["V3R", "V4R", "V7", "V8", "V9"]
-BAD_LEAD = "V10"
-LEAD_NAMES = LEADS + EXTRA_LEADS + [BAD_LEAD]
+BAD_LEAD = "V10"              # not a lead of the contract: the planted unknown_lead reject
+LEAD_NAMES = [*STANDARD_LEADS, *EXTRA_LEADS, BAD_LEAD]
 LD = {name: i for i, name in enumerate(LEAD_NAMES)}
 I_, II, III, AVR, AVL, AVF, V1, V2, V3, V4, V5, V6 = range(12)
 LIMB = [I_, II, III, AVR, AVL, AVF]
@@ -164,12 +159,12 @@ name = "{HOSPITAL} (invented sample site)"
 # timezone = "Europe/London" to have such timestamps converted, DST-correct.
 
 [analytes]
-potassium = ["{LOINC_POTASSIUM}"]
-magnesium = ["{LOINC_MAGNESIUM}"]
-calcium = ["{LOINC_CALCIUM}"]
+potassium = ["{LOINC_POTASSIUM_SERUM}"]
+magnesium = ["{LOINC_MAGNESIUM_MASS}"]
+calcium = ["{LOINC_CALCIUM_MASS}"]
 
 [[troponin]]
-code = "{LOINC_TROPONIN_HS}"
+code = "{LOINC_TROPONIN_I_HS}"
 url_ng_l = {TROPONIN_URL_NG_L}  # example value only: each site sets its own assay's 99th centile
 
 [drugs]
@@ -355,11 +350,11 @@ class _Builder:
         extra = np.flatnonzero((self.e_role == 0) & (rng.random(n) < 0.008))
         half = rng.random(extra.size) < 0.5
         right, post = extra[half], extra[~half]
-        for lead in ["V3R", "V4R"]:
+        for lead in RIGHT_LEADS:
             m = right.size
             self.add_leads(right, lead, self.u(-20, 40, m), self.u(100, 300, m), self.u(-800, -300, m),
                            self.u(-20, 20, m), self.u(50, 200, m))
-        for lead in ["V7", "V8", "V9"]:
+        for lead in POSTERIOR_LEADS:
             m = post.size
             self.add_leads(post, lead, self.u(0, 60, m), self.u(300, 700, m), self.u(-300, -100, m),
                            self.u(-20, 20, m), self.u(50, 200, m))
@@ -738,7 +733,7 @@ def st_posterior(b, rows, prior):
     b.lead(rows, V3, r=(900, 1400), s=(-500, -200), st=(-160, -80), t=(300, 600))
     back = rows[b.rng.random(n) < 0.5]
     m = back.size
-    for lead in ("V7", "V8", "V9"):
+    for lead in POSTERIOR_LEADS:
         b.add_leads(back, lead, b.u(0, 60, m), b.u(300, 600, m), b.u(-200, -100, m),
                     b.u(110, 180, m), b.u(100, 250, m))
     b.suffix[back] = "; V7-V9 recorded with elevation"
@@ -749,7 +744,7 @@ def st_posterior(b, rows, prior):
 def st_right_ventricular(b, rows, prior):
     _inferior(b, rows)
     m = len(rows)
-    for lead in ("V3R", "V4R"):
+    for lead in RIGHT_LEADS:
         b.add_leads(rows, lead, b.u(-20, 40, m), b.u(100, 250, m), b.u(-700, -300, m),
                     b.u(100, 160, m), b.u(100, 250, m))
     b.troponin_series(rows)
@@ -1268,7 +1263,7 @@ def generate(out_dir, patients: int = 2000, days: int = 30, end: str = "2026-11-
         t0 = int(b.clock(np.array([days - 1]), 1)[0])
         n_naive = 3
         naive_keys = [f"{RESULT_PREFIX}{i:0{max(8, len(str(n_lab + 10)))}d}" for i in range(n_lab + 1, n_lab + 1 + n_naive)]
-        naive_codes = [LOINC_POTASSIUM, LOINC_SODIUM, LOINC_CREATININE]
+        naive_codes = [LOINC_POTASSIUM_SERUM, LOINC_SODIUM, LOINC_CREATININE]
         naive_table = pa.table([
             pa.array(naive_keys), pa.array([pid[p_naive]] * n_naive), _ts([t0] * n_naive, tz=None),
             _ts([t0 + 55 * US_PER_MIN] * n_naive, tz=None), pa.array(naive_codes), _f([4.3, 139.0, 0.84]),
@@ -1287,7 +1282,7 @@ def generate(out_dir, patients: int = 2000, days: int = 30, end: str = "2026-11-
         wt_keys = [f"{RESULT_PREFIX}{i:0{max(8, len(str(n_lab + 10)))}d}" for i in range(n_lab + 1 + n_naive, n_lab + 4 + n_naive)]
         wt_table = pa.table([
             pa.array(wt_keys), pa.array([pid[p_wt]] * 3), _ts([t1] * 3), _ts([t1 + 70 * US_PER_MIN] * 3),
-            pa.array([LOINC_POTASSIUM, LOINC_SODIUM, LOINC_GLUCOSE]), pa.array(["4.1", "138", "see comment"]),
+            pa.array([LOINC_POTASSIUM_SERUM, LOINC_SODIUM, LOINC_GLUCOSE]), pa.array(["4.1", "138", "see comment"]),
             pa.array(["mmol/L", "mmol/L", "mg/dL"]), pa.array([False, False, None], pa.bool_()),
         ], schema=pa.schema([f if f.name != "value" else pa.field("value", pa.string()) for f in LAB_SCHEMA]))
         d = _date(t1)

@@ -24,6 +24,7 @@ Sources
 from __future__ import annotations
 
 import datetime as dt
+import os
 import re
 from contextlib import contextmanager
 from pathlib import Path
@@ -37,6 +38,8 @@ from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.engine import Connection, Engine
 from sqlalchemy.schema import AddConstraint, CreateTable, DropConstraint
 
+from pipeline.errors import BadInputError
+from pipeline.files import write_atomic
 from pipeline.worklist import (ACTIVE_STATUSES, ITEM_COLUMNS, STATUS_CLOSED, STATUS_EXPLAINED,
                                STATUS_REOPENED, STATUSES, TIMESTAMP_COLUMNS, apply_reopen_rule,
                                empty_items, normalise_items)
@@ -154,7 +157,7 @@ cardiosieve_schema = Table(
 )
 
 
-class StoreSchemaError(Exception):
+class StoreSchemaError(BadInputError):
     """The store's schema cannot be used or upgraded by this code (the message names tables
     and versions, never row values)."""
 
@@ -670,5 +673,12 @@ def export_items(engine: Engine, fmt: str = "csv", dest=None) -> int:
     if dest is None:
         raise ValueError("export: no destination given")
     df["caution"] = CAUTION
-    df.to_csv(dest, index=False, lineterminator="\n")
+
+    def write(target) -> None:
+        df.to_csv(target, index=False, lineterminator="\n")
+
+    if isinstance(dest, (str, os.PathLike)):   # a file: published whole (temporary file, rename)
+        write_atomic(dest, write)
+    else:
+        write(dest)
     return len(df)

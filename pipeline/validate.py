@@ -11,8 +11,9 @@ import pandas as pd
 
 from pipeline import contract as c
 from pipeline.config import load_settings
+from pipeline.files import write_parquet_atomic
 from pipeline.load import read_table
-from pipeline.run import _reasons, interval, write_parquet
+from pipeline.run import _reasons, interval
 
 
 def validate_lake(lake, config=None, start=None, end=None, out=None) -> dict:
@@ -31,5 +32,5 @@ def validate_lake(lake, config=None, start=None, end=None, out=None) -> dict:
               "tables": tables, "rejects_by_reason": _reasons(all_rejects)}
     if out:
         Path(out).mkdir(parents=True, exist_ok=True)
-        result["rejects_path"] = str(write_parquet(all_rejects, Path(out) / "rejects.parquet"))
+        result["rejects_path"] = str(write_parquet_atomic(all_rejects, Path(out) / "rejects.parquet"))
     return result

@@ -5,10 +5,10 @@ What it does
     rank_items            documented score and rank (1 = review first); see docs/prioritisation.md
     apply_reopen_rule     a closed or explained item reopens only for a more severe finding
     EXPLAINERS            one hook per screen marking items that later data explain away
-    write_parquet_atomic  temporary file, then rename: a crash leaves the previous file intact
 
-Everything except write_parquet_atomic is pure: no files, no connections, no clock (the run passes
-`now`, its end timestamp). The worklist is a screening aid for human review, never a diagnosis.
+Everything here is pure: no files, no connections, no clock (the run passes `now`, its end
+timestamp; pipeline/run.py publishes the worklist through pipeline/files.py). The worklist is a
+screening aid for human review, never a diagnosis.
 
 Sources
     UKKA-2020  UK Kidney Association clinical practice guideline, treatment of acute hyperkalaemia
@@ -18,13 +18,13 @@ from __future__ import annotations
 
 import hashlib
 import json
-import os
-import tempfile
-from pathlib import Path
 from typing import Callable
 
 import numpy as np
 import pandas as pd
+
+from pipeline.jsontext import loads_object, plain
+from screens import FINDING_COLUMNS, SCORE_PART_KEYS
 
 # ---------------------------------------------------------------------------------------------
 # Statuses: the one place they are named. store.py and commands.py use these.
@@ -43,8 +43,6 @@ ITEM_ID_PREFIX = "wl-"
 ITEM_ID_HEX = 16                # 64 bits of sha1: collisions are negligible at worklist sizes
 EPISODE_H = 72.0                # default episode window; site config [windows] episode_h
 
-FINDING_COLUMNS = ["ecg_id", "patient_id", "acquired_at", "screen", "tier", "score_parts", "summary",
-                   "evidence", "caveats", "territories", "rule_version"]
 # The worklist contract columns, in order ...
 CONTRACT_COLUMNS = ["item_id", "rank", "tier", "screen", "patient_id", "ecg_id", "ecg_at", "score",
                     "summary", "evidence", "caveats", "territories", "rule_version", "run_id",
@@ -93,32 +91,12 @@ def _utc_ts(t) -> pd.Timestamp:
     return t.tz_convert("UTC").as_unit("us")
 
 
-def _json_loads(text) -> dict:
-    if not isinstance(text, str) or not text.strip():
-        return {}
-    value = json.loads(text)
-    return value if isinstance(value, dict) else {}
-
-
-def _json_clean(value):
-    """NaN/NA -> None, numpy scalars -> Python, so json.dumps writes valid JSON."""
-    if value is None or value is pd.NA or value is pd.NaT:
-        return None
-    if isinstance(value, (float, np.floating)):
-        return None if np.isnan(value) else float(value)
-    if isinstance(value, np.integer):
-        return int(value)
-    if isinstance(value, np.bool_):
-        return bool(value)
-    return value
-
-
 def _parts_frame(score_parts: pd.Series) -> pd.DataFrame:
     """score_parts JSON texts -> one numeric column per known key (NaN when absent)."""
-    records = [_json_loads(t) for t in score_parts]   # one parse per flagged row
+    records = [loads_object(t) for t in score_parts]   # one parse per flagged row
     parts = pd.DataFrame.from_records(records, index=score_parts.index) if records else pd.DataFrame(index=score_parts.index)
     out = pd.DataFrame(index=score_parts.index)
-    for key in ("severity", "lab_confirmed", "lab_gap_min", "trend", "prior_present", "troponin_ratio"):
+    for key in SCORE_PART_KEYS:
         out[key] = pd.to_numeric(parts[key], errors="coerce") if key in parts else np.nan
     out["location"] = parts["location"].astype("str") if "location" in parts else pd.Series(np.nan, index=out.index, dtype="str")
     return out
@@ -271,7 +249,7 @@ def explain_hyperkalemia(items: pd.DataFrame, aligned: pd.DataFrame,
         return reasons
     cols = ["k_mmol_l", "k_hemolyzed", "k_offset_min", "k_result_id"]
     values = pd.DataFrame.from_records(
-        [_json_loads(e).get("values", {}) or {} for e in items["evidence"]], index=items.index)
+        [loads_object(e).get("values", {}) or {} for e in items["evidence"]], index=items.index)
     dec = pd.DataFrame(index=items.index)
     for c in cols:
         dec[c] = values[c] if c in values else np.nan
@@ -417,8 +395,7 @@ def build_items(findings: pd.DataFrame, aligned: pd.DataFrame | None, existing: 
     loc = pd.Series(np.nan, index=f.index, dtype="str")
     if aligned is not None and "location" in aligned.columns and len(f):
         loc = f["ecg_id"].map(aligned.drop_duplicates("ecg_id").set_index("ecg_id")["location"]).astype("str")
-    f["score_parts"] = [json.dumps({**{k: _json_clean(v) for k, v in _json_loads(p).items()},
-                                    "location": _json_clean(l)}, sort_keys=True)
+    f["score_parts"] = [json.dumps(plain({**loads_object(p), "location": l}), sort_keys=True)
                         for p, l in zip(f["score_parts"], loc)]
 
     items = empty_items()
@@ -474,33 +451,3 @@ def build_items(findings: pd.DataFrame, aligned: pd.DataFrame | None, existing: 
     if out.empty:
         return empty_items()
     return rank_items(normalise_items(out), location_weights)
-
-
-# ---------------------------------------------------------------------------------------------
-# Files
-# ---------------------------------------------------------------------------------------------
-def write_parquet_atomic(df: pd.DataFrame, path) -> Path:
-    """Write df to `path` as Parquet through a temporary file in the same folder, fsync, then
-    os.replace: readers see the old file or the new one, never half of one. On any failure the
-    temporary file is removed and the previous file is left as it was."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    os.close(fd)
-    try:
-        df.to_parquet(tmp, index=False)
-        with open(tmp, "rb") as fh:
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    try:   # make the rename itself durable (POSIX); not available everywhere
-        dir_fd = os.open(path.parent, os.O_RDONLY)
-        try:
-            os.fsync(dir_fd)
-        finally:
-            os.close(dir_fd)
-    except OSError:
-        pass
-    return path

@@ -6,13 +6,14 @@ shape identical across screens and the text formatting consistent.
 
 from __future__ import annotations
 
-import json
 import math
 from typing import Any, Iterable, Sequence
 
 import numpy as np
 import pandas as pd
 
+from pipeline.frames import whole_years
+from pipeline.jsontext import to_json
 from screens.criteria import Threshold, as_float_array
 
 FINDING_COLUMNS = [
@@ -96,10 +97,7 @@ def age_years(df: pd.DataFrame) -> np.ndarray:
         return num(df, "age_years")
     if "birth_date" in df.columns:
         born = pd.to_datetime(df["birth_date"], utc=True)
-        at = pd.to_datetime(df["acquired_at"], utc=True)
-        years = at.dt.year - born.dt.year
-        before_birthday = (at.dt.month < born.dt.month) | ((at.dt.month == born.dt.month) & (at.dt.day < born.dt.day))
-        return as_float_array(years - before_birthday.astype("Int64"))
+        return as_float_array(whole_years(born, pd.to_datetime(df["acquired_at"], utc=True)))
     return np.full(len(df), np.nan)
 
 
@@ -115,34 +113,8 @@ def sex_masks(df: pd.DataFrame) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 
 
 # --------------------------------------------------------------------------- JSON
-
-def _clean(obj: Any) -> Any:
-    if isinstance(obj, dict):
-        return {str(k): _clean(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_clean(v) for v in obj]
-    if obj is None or obj is pd.NA or obj is pd.NaT:
-        return None
-    if isinstance(obj, (bool, np.bool_)):
-        return bool(obj)
-    if isinstance(obj, (int, np.integer)):
-        return int(obj)
-    if isinstance(obj, (float, np.floating)):
-        x = float(obj)
-        if math.isnan(x) or math.isinf(x):
-            return None
-        x = round(x, 4)
-        return int(x) if x.is_integer() and abs(x) < 1e15 else x
-    if isinstance(obj, pd.Timestamp):
-        return obj.isoformat()
-    if isinstance(obj, Threshold):
-        return obj.as_dict()
-    return str(obj) if not isinstance(obj, str) else obj
-
-
-def to_json(obj: Any) -> str:
-    """Strict JSON: NaN/NA become null, numpy scalars plain numbers, floats rounded to 4 decimals."""
-    return json.dumps(_clean(obj), ensure_ascii=False, allow_nan=False)
+# to_json (strict JSON, NaN/NA as null, floats to 4 decimals) lives in pipeline/jsontext.py,
+# imported above; screens import it from here.
 
 
 def score_parts(

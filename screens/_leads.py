@@ -17,12 +17,15 @@ from typing import Sequence
 import numpy as np
 import pandas as pd
 
+from pipeline import contract
 from pipeline.frames import positions
 
-LIMB = ["I", "II", "III", "aVR", "aVL", "aVF"]
-PRECORDIAL = ["V1", "V2", "V3", "V4", "V5", "V6"]
-RIGHT = ["V3R", "V4R"]
-POSTERIOR = ["V7", "V8", "V9"]
+# The lake contract's lead names (pipeline/contract.py), as lists: screens select frame columns
+# with them and add them together.
+LIMB = list(contract.LIMB_LEADS)
+PRECORDIAL = list(contract.PRECORDIAL_LEADS)
+RIGHT = list(contract.RIGHT_LEADS)
+POSTERIOR = list(contract.POSTERIOR_LEADS)
 STANDARD = LIMB + PRECORDIAL
 ALL_LEADS = STANDARD + RIGHT + POSTERIOR
 
@@ -30,7 +33,7 @@ INFERIOR = ["II", "III", "aVF"]
 HIGH_LATERAL = ["I", "aVL"]
 # Lead groups of UDMI-2018: any two leads of one group are contiguous.
 LEAD_GROUPS = [INFERIOR, HIGH_LATERAL, POSTERIOR, RIGHT]
-PRECORDIAL_CHAIN = ["V4R", "V3R", "V1", "V2", "V3", "V4", "V5", "V6", "V7", "V8", "V9"]
+PRECORDIAL_CHAIN = [*reversed(RIGHT), *PRECORDIAL, *POSTERIOR]   # V4R - V3R - V1 ... V6 - V7 - V8 - V9
 CABRERA_CIRCLE = ["aVL", "I", "-aVR", "II", "aVF", "III"]   # supporting evidence only
 # The order leads are named in summaries.
 DISPLAY_ORDER = ["I", "II", "III", "aVR", "-aVR", "aVL", "aVF", *PRECORDIAL, *RIGHT, *POSTERIOR]

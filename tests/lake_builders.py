@@ -8,6 +8,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from pipeline.codes import LOINC_POTASSIUM_SERUM
 from pipeline.contract import STANDARD_LEADS
 
 UTC = "UTC"
@@ -35,7 +36,7 @@ def lead_rows(ecg_id="E1", **over_by_lead) -> list[dict]:
     return rows
 
 
-def lab_row(result_id="R1", patient_id="P1", collected_at="2026-11-29T09:00:00Z", analyte="2823-3",
+def lab_row(result_id="R1", patient_id="P1", collected_at="2026-11-29T09:00:00Z", analyte=LOINC_POTASSIUM_SERUM,
             value=4.2, unit="mmol/L", **over) -> dict:
     row = dict(result_id=result_id, patient_id=patient_id, collected_at=ts(collected_at),
                resulted_at=ts(collected_at) + pd.Timedelta(hours=1), analyte=analyte, value=value, unit=unit,

@@ -3,10 +3,11 @@ import pandas as pd
 import pytest
 
 from pipeline.align import align
+from pipeline.codes import LOINC_MAGNESIUM_MASS, LOINC_POTASSIUM_SERUM, LOINC_TROPONIN_I_HS
 from pipeline.config import settings_from_dict
 from tests.lake_builders import ecg_row, lab_row, patient_row, ts
 
-SETTINGS = settings_from_dict({"troponin": [{"code": "89579-7", "url_ng_l": 26.0}],
+SETTINGS = settings_from_dict({"troponin": [{"code": LOINC_TROPONIN_I_HS, "url_ng_l": 26.0}],
                                "drugs": {"qt_prolonging": ["haloperidol", "ondansetron"],
                                          "loop_diuretic": ["furosemide"]}})
 AT = "2026-11-29T10:00:00Z"
@@ -76,8 +77,8 @@ def test_age_in_whole_years_and_sex():
 
 
 def test_troponin_ratio_to_assay_limit_and_rise():
-    got = run(labs=[lab_row("t1", collected_at="2026-11-29T09:00:00Z", analyte="89579-7", value=30.0, unit="ng/L"),
-                    lab_row("t2", collected_at="2026-11-29T13:00:00Z", analyte="89579-7", value=78.0, unit="ng/L")])
+    got = run(labs=[lab_row("t1", collected_at="2026-11-29T09:00:00Z", analyte=LOINC_TROPONIN_I_HS, value=30.0, unit="ng/L"),
+                    lab_row("t2", collected_at="2026-11-29T13:00:00Z", analyte=LOINC_TROPONIN_I_HS, value=78.0, unit="ng/L")])
     row = got.iloc[0]
     assert row["trop_ng_l"] == 30.0 and row["trop_n"] == 2
     assert row["trop_max_ratio"] == pytest.approx(3.0) and row["trop_delta_ng_l"] == 48.0
@@ -105,7 +106,7 @@ def test_missing_patient_keeps_the_ecg_with_unknown_age_and_sex():
 # ---------------------------------------------------------------------------------------------
 # Rejected potassium (k_rejected_reason): "measured but rejected" is not "none measured".
 
-def rejected(result_id, collected_at, reason, patient_id="P1", analyte="2823-3"):
+def rejected(result_id, collected_at, reason, patient_id="P1", analyte=LOINC_POTASSIUM_SERUM):
     return dict(result_id=result_id, patient_id=patient_id, collected_at=ts(collected_at) if collected_at else pd.NaT,
                 analyte=analyte, reason=reason)
 
@@ -147,7 +148,7 @@ def test_a_rejected_potassium_is_ignored_when_one_was_accepted():
 
 def test_rejects_of_other_analytes_patients_or_unplaceable_rows_do_not_count():
     got = run_with_rejects(rejects=[
-        rejected("mg", "2026-11-29T09:00:00Z", "impossible_value", analyte="19123-9"),   # magnesium
+        rejected("mg", "2026-11-29T09:00:00Z", "impossible_value", analyte=LOINC_MAGNESIUM_MASS),
         rejected("other", "2026-11-29T09:00:00Z", "impossible_value", patient_id="P2"),  # another patient
         rejected("no-time", None, "unparseable_timestamp"),                              # cannot be placed
     ])

@@ -8,10 +8,11 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from pipeline import codes
 from pipeline.align import align
 from pipeline.config import settings_from_dict
 
-SETTINGS = settings_from_dict({"troponin": [{"code": "89579-7", "url_ng_l": 26.0}],
+SETTINGS = settings_from_dict({"troponin": [{"code": codes.LOINC_TROPONIN_I_HS, "url_ng_l": 26.0}],
                                "drugs": {"qt_prolonging": ["drug a", "drug b"], "loop_diuretic": ["drug c"]}})
 W = SETTINGS.windows
 GRID = pd.Timedelta(minutes=30)   # a coarse grid: 24 h and 6 h edges are hit exactly and often
@@ -29,12 +30,13 @@ def random_lake(seed: int, n_patients=25, n_ecg=120, n_lab=600):
         "qrs_ms": rng.uniform(80, 130, n_ecg).round(), "qt_ms": rng.uniform(340, 480, n_ecg).round(),
     })
     ecg["rr_ms"] = 60000 / ecg["heart_rate_bpm"]
-    codes = np.array(["2823-3", "19123-9", "17861-6", "89579-7", "2951-2"])
+    analytes = np.array([codes.LOINC_POTASSIUM_SERUM, codes.LOINC_MAGNESIUM_MASS, codes.LOINC_CALCIUM_MASS,
+                         codes.LOINC_TROPONIN_I_HS, codes.LOINC_SODIUM])
     lab = pd.DataFrame({
         "result_id": [f"R{i:05d}" for i in range(n_lab)],
         "patient_id": rng.choice(pids, n_lab),
         "collected_at": T0 + GRID * rng.integers(0, 48 * 20, n_lab),
-        "analyte": rng.choice(codes, n_lab),
+        "analyte": rng.choice(analytes, n_lab),
         "value": rng.uniform(2.5, 7.5, n_lab).round(1),
         "hemolyzed": pd.array(rng.choice([True, False, None], n_lab), dtype="boolean"),
     })
@@ -49,8 +51,8 @@ def random_lake(seed: int, n_patients=25, n_ecg=120, n_lab=600):
 
 REFERENCE_SQL = """
 WITH anchors AS (SELECT ecg_id, patient_id, acquired_at FROM ecg),
-labs AS (SELECT *, CASE analyte WHEN '2823-3' THEN 'k' WHEN '19123-9' THEN 'mg' WHEN '17861-6' THEN 'ca'
-                                WHEN '89579-7' THEN 'trop' END AS a FROM lab),
+labs AS (SELECT *, CASE analyte WHEN '{k}' THEN 'k' WHEN '{mg}' THEN 'mg' WHEN '{ca}' THEN 'ca'
+                                WHEN '{trop}' THEN 'trop' END AS a FROM lab),
 near AS (
   SELECT a.ecg_id, l.a, l.result_id, l.value, l.collected_at,
          row_number() OVER (PARTITION BY a.ecg_id, l.a
@@ -95,7 +97,8 @@ def reference(ecg, lab):
     con.register("lab", lab)
     sql = REFERENCE_SQL.format(before=int(W["lab_before_h"]), after=int(W["lab_after_h"]),
                                trend=int(W["k_trend_h"]), gap=int(W["prior_ecg_min_gap_h"]),
-                               days=int(W["prior_ecg_max_days"]))
+                               days=int(W["prior_ecg_max_days"]), k=codes.LOINC_POTASSIUM_SERUM,
+                               mg=codes.LOINC_MAGNESIUM_MASS, ca=codes.LOINC_CALCIUM_MASS, trop=codes.LOINC_TROPONIN_I_HS)
     return con.execute(sql).df()
 
 

@@ -58,6 +58,30 @@ def test_corrupt_file_exits_2_naming_the_file(tmp_path, capsys):
     assert "part-bad.parquet" in capsys.readouterr().err
 
 
+def _bad_input_errors():
+    from pipeline.config import ConfigError
+    from pipeline.load import LakeError
+    from pipeline.normalise import ContractError
+    from pipeline.quality import QualityGateError
+    from pipeline.run import RunError
+    from pipeline.store import StoreSchemaError
+    return [ConfigError("site.toml: [analytes] 'iron' is not one of ..."), ContractError("table ecg lacks qt_ms"),
+            LakeError("cannot read ecg/date=2026-11-29/part-0.parquet"), RunError("--start must be before --end"),
+            QualityGateError(["lab_potassium_plausible: 9.0 % of lab rows"]),
+            StoreSchemaError("store schema version 9 is newer than this cardiosieve")]
+
+
+@pytest.mark.parametrize("error", _bad_input_errors(), ids=lambda e: type(e).__name__)
+def test_every_bad_input_error_exits_2_with_its_message(tmp_path, capsys, monkeypatch, error):
+    import pipeline.run
+
+    def fail(*a, **k):
+        raise error
+    monkeypatch.setattr(pipeline.run, "run_interval", fail)
+    assert main(["run", "--lake", "x", "--out", str(tmp_path), *ARGS]) == 2
+    assert capsys.readouterr().err == f"cardiosieve: error: {error}\n"
+
+
 def test_internal_error_exits_1_without_a_traceback(tmp_path, capsys, monkeypatch):
     import pipeline.run
     monkeypatch.setattr(pipeline.run, "run_interval", lambda *a, **k: 1 / 0)

@@ -10,7 +10,9 @@ import pytest
 
 from pipeline import commands
 from pipeline.store import OUTCOMES, open_store, read_items, sqlite_url, upsert_items
-from pipeline.worklist import FINDING_COLUMNS, build_items, write_parquet_atomic
+from pipeline.files import write_parquet_atomic
+from pipeline.worklist import build_items
+from screens import FINDING_COLUMNS
 
 NIGHT = pd.Timestamp("2026-03-02 02:00", tz="UTC")
 

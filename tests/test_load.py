@@ -5,6 +5,7 @@ import pyarrow.parquet as pq
 import pytest
 
 from pipeline import contract as c
+from pipeline.codes import LOINC_SODIUM
 from pipeline.config import settings_from_dict
 from pipeline.load import LakeError, read_table, table_files
 from pipeline.run import stage_align, stage_load
@@ -100,7 +101,7 @@ def test_stage_load_reads_only_the_nights_patients_and_reconciles(tmp_path):
                       ecg=[ecg_row("E1", "P1"), ecg_row("Eold", "P1", "2026-06-01T10:00Z"),
                            ecg_row("Eother", "P9", "2026-06-01T10:00Z")],
                       labs=[lab_row("R1", "P1"), lab_row("R9", "P9"),
-                            lab_row("Na", "P1", analyte="2951-2", value=140.0)],   # sodium: not read
+                            lab_row("Na", "P1", analyte=LOINC_SODIUM, value=140.0)],   # not read
                       patients=[patient_row("P1"), patient_row("P9")])
     got = stage_load(lake, tmp_path / "out", *NIGHT)
     t = got["tables"]

@@ -4,6 +4,7 @@ import pandas as pd
 import pytest
 
 from pipeline import contract as c
+from pipeline.codes import LOINC_CALCIUM_MASS, LOINC_MAGNESIUM_MASS, LOINC_POTASSIUM_SERUM
 from pipeline.config import settings_from_dict
 from pipeline.normalise import ContractError, normalise_table
 from tests.lake_builders import ecg_row, lab_row, lead_rows
@@ -19,7 +20,7 @@ def lab(values, units, analyte):
 
 def test_potassium_meq_per_litre_equals_mmol_per_litre():
     # K+ is monovalent, so 1 meq/L = 1 mmol/L (IUPAC definition of the equivalent; valence 1).
-    got = normalise_table(lab([5.1, 5.1], ["meq/L", "mEq/L"], "2823-3"), c.LAB, DEFAULT).clean
+    got = normalise_table(lab([5.1, 5.1], ["meq/L", "mEq/L"], LOINC_POTASSIUM_SERUM), c.LAB, DEFAULT).clean
     assert got["value"].tolist() == [5.1, 5.1] and set(got["unit"]) == {"mmol/L"}
 
 
@@ -28,7 +29,7 @@ def test_potassium_meq_per_litre_equals_mmol_per_litre():
     (1.7, 0.6994),     # 17 mg/L / 24.305 = 0.6994 mmol/L (hypomagnesaemia cut-off, docs/references.md, practice)
 ])
 def test_magnesium_mg_per_dl_converts_by_molar_mass(mg_dl, expected_mmol_l):
-    got = normalise_table(lab([mg_dl], ["mg/dL"], "19123-9"), c.LAB, DEFAULT).clean
+    got = normalise_table(lab([mg_dl], ["mg/dL"], LOINC_MAGNESIUM_MASS), c.LAB, DEFAULT).clean
     assert got["value"].iloc[0] == pytest.approx(expected_mmol_l, abs=1e-4)
 
 
@@ -37,13 +38,13 @@ def test_magnesium_mg_per_dl_converts_by_molar_mass(mg_dl, expected_mmol_l):
     (8.5, 2.1209),     # 85 mg/L / 40.078 = 2.1209 mmol/L (lower normal total calcium, practice)
 ])
 def test_calcium_mg_per_dl_converts_by_molar_mass(mg_dl, expected_mmol_l):
-    got = normalise_table(lab([mg_dl], ["mg/dL"], "17861-6"), c.LAB, DEFAULT).clean
+    got = normalise_table(lab([mg_dl], ["mg/dL"], LOINC_CALCIUM_MASS), c.LAB, DEFAULT).clean
     assert got["value"].iloc[0] == pytest.approx(expected_mmol_l, abs=1e-4)
 
 
 def test_divalent_meq_is_half_a_millimole():
     # Mg2+ and Ca2+ carry two charges: 1 mmol = 2 meq (definition of the equivalent).
-    got = normalise_table(lab([1.6], ["meq/L"], "19123-9"), c.LAB, DEFAULT).clean
+    got = normalise_table(lab([1.6], ["meq/L"], LOINC_MAGNESIUM_MASS), c.LAB, DEFAULT).clean
     assert got["value"].iloc[0] == pytest.approx(0.8)
 
 
@@ -125,7 +126,7 @@ def test_numbers_stored_as_text_parse_and_garbage_is_wrong_type():
 
 
 def test_potassium_of_45_is_impossible_and_unknown_unit_is_rejected():
-    got = normalise_table(lab([45.0, 4.0, 4.0], ["mmol/L", "%", "mmol/L"], "2823-3"), c.LAB, DEFAULT)
+    got = normalise_table(lab([45.0, 4.0, 4.0], ["mmol/L", "%", "mmol/L"], LOINC_POTASSIUM_SERUM), c.LAB, DEFAULT)
     assert got.rejects[["row_key", "reason"]].values.tolist() == [["R0", "impossible_value"], ["R1", "unknown_unit"]]
 
 

@@ -14,6 +14,8 @@ import pandas as pd
 import pytest
 
 from pipeline import contract as c
+from pipeline.codes import (LOINC_CALCIUM_MASS, LOINC_MAGNESIUM_MASS, LOINC_POTASSIUM_SERUM, LOINC_SODIUM,
+                            LOINC_TROPONIN_I_HS)
 from pipeline.config import Assay, Settings
 from pipeline.quality import (CHECK_COLUMNS, QualityGateError, QualitySettings, build_checks, enforce, ge_context,
                               row_count_band, run_quality, run_suite, write_report)
@@ -55,7 +57,7 @@ def lead_frame(ecg_ids, leads=c.STANDARD_LEADS):
                          "t_amp_uv": np.full(n, 250.0)})
 
 
-def lab_frame(n=100, analyte="2823-3", value=4.2, unit="mmol/L"):
+def lab_frame(n=100, analyte=LOINC_POTASSIUM_SERUM, value=4.2, unit="mmol/L"):
     collected = _utc([T_ECG - pd.Timedelta(minutes=i) for i in range(n)])
     return pd.DataFrame({"result_id": _str([f"R{i:03d}" for i in range(n)]),
                          "patient_id": _str([f"P{i:03d}" for i in range(n)]),
@@ -200,10 +202,11 @@ def test_lead_suite_rejects_unknown_names_duplicates_and_implausible_amplitudes(
 
 
 def test_lab_suite_checks_codes_units_ranges_and_times():
-    lab = pd.concat([lab_frame(60, "2823-3", 4.2), lab_frame(20, "19123-9", 0.8), lab_frame(20, "17861-6", 2.3)],
+    lab = pd.concat([lab_frame(60, LOINC_POTASSIUM_SERUM, 4.2), lab_frame(20, LOINC_MAGNESIUM_MASS, 0.8),
+                     lab_frame(20, LOINC_CALCIUM_MASS, 2.3)],
                     ignore_index=True)
     lab["result_id"] = _str([f"R{i:03d}" for i in range(len(lab))])
-    lab.loc[0, "analyte"] = "2951-2"                       # sodium: not a configured analyte
+    lab.loc[0, "analyte"] = LOINC_SODIUM                   # not a configured analyte
     lab.loc[1, "unit"] = "mg/dL"                           # potassium is normalised to mmol/L
     lab.loc[2, "value"] = 10.5                             # K 1.5-10 mmol/L (common practice)
     lab.loc[3, "value"] = 1.4
@@ -235,12 +238,12 @@ def test_lab_suite_checks_codes_units_ranges_and_times():
 
 
 def test_troponin_codes_come_from_the_site_and_need_ng_per_litre():
-    lab = lab_frame(50, "89579-7", 12.0, "ng/L")
+    lab = lab_frame(50, LOINC_TROPONIN_I_HS, 12.0, "ng/L")
     lab.loc[0, "unit"] = "mmol/L"
     without = run_quality({"lab": lab}, RUN_END)
     assert check(without, "lab_analyte_known")["rows_failed"] == 50          # not configured: all unknown
     assert len(without.critical_failures) == 1
-    site = Settings(troponin=(Assay("89579-7", 26.0),))
+    site = Settings(troponin=(Assay(LOINC_TROPONIN_I_HS, 26.0),))
     with_site = run_quality({"lab": lab}, RUN_END, settings=site)
     assert rejected(with_site, "lab") == {"R000": {"lab_troponin_unit_normalised"}}
 
@@ -326,7 +329,7 @@ def test_all_ids_empty_is_critical():
 
 def test_site_may_make_a_check_warning_only():
     lab = lab_frame(30)
-    lab.loc[0:9, "analyte"] = "2951-2"         # a third of the rows are an analyte the site exports anyway
+    lab.loc[0:9, "analyte"] = LOINC_SODIUM       # a third of the rows are an analyte the site exports anyway
     qs = QualitySettings(critical_above_pct_by_check={"lab_analyte_known": None})
     result = run_quality({"lab": lab}, RUN_END, settings=qs)
     assert result.critical_failures == [] and check(result, "lab_analyte_known")["severity"] == "warning"
@@ -379,7 +382,7 @@ def test_ecg_missing_a_standard_lead_is_flagged_and_kept():
     leads = lead_frame(ecg["ecg_id"])
     leads = leads[~((leads["ecg_id"] == "E001") & (leads["lead"] == "V4"))]          # 11 leads
     leads = leads[~((leads["ecg_id"] == "E002") & leads["lead"].isin(["I", "II"]))]  # 10 leads
-    extra = lead_frame(["E003"], leads=("V3R", "V4R"))                                # 12 + 2 extra: complete
+    extra = lead_frame(["E003"], leads=c.RIGHT_LEADS)                                 # 12 + 2 extra: complete
     bad = (leads["ecg_id"] == "E004") & (leads["lead"] == "V1")
     leads.loc[bad, "st_j_uv"] = 2500.0          # rejected lead row: E004 is left with 11 usable leads
     result = run_quality({"ecg": ecg, "ecg_lead": pd.concat([leads, extra])}, RUN_END)

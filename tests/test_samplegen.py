@@ -12,13 +12,15 @@ import pyarrow.parquet as pq
 import pytest
 
 from pipeline import samplegen
+from pipeline.codes import LOINC_CALCIUM_MASS, LOINC_MAGNESIUM_MASS, LOINC_POTASSIUM_SERUM, LOINC_TROPONIN_I_HS
+from pipeline.contract import ALL_LEADS, LIMB_LEADS, PRECORDIAL_LEADS, STANDARD_LEADS
 from pipeline.samplegen import generate
 
 REPO = Path(__file__).resolve().parents[1]
 SAMPLE = REPO / "sample_lake"
-STANDARD_LEADS = ["I", "II", "III", "aVR", "aVL", "aVF", "V1", "V2", "V3", "V4", "V5", "V6"]
-ALLOWED_LEADS = set(STANDARD_LEADS) | {"V3R", "V4R", "V7", "V8", "V9"}   # the contract's lead list
-K, MG, CA, TROP = "2823-3", "19123-9", "17861-6", "89579-7"              # LOINC codes of the sample site (docs/references.md)
+ALLOWED_LEADS = set(ALL_LEADS)    # the contract's lead list
+# The sample site's LOINC codes (docs/references.md).
+K, MG, CA, TROP = LOINC_POTASSIUM_SERUM, LOINC_MAGNESIUM_MASS, LOINC_CALCIUM_MASS, LOINC_TROPONIN_I_HS
 KNOWN_UNITS = {"mmol/L", "meq/L", "mg/dL", "g/dL", "ng/L"}
 
 
@@ -160,8 +162,8 @@ def test_normal_patients_leads_are_inside_normal_ranges(tables, manifest):
     leads = tables["ecg_lead"][tables["ecg_lead"]["ecg_id"].isin(ecg["ecg_id"])]
     std = leads[leads["lead"].isin(STANDARD_LEADS)]
     assert (leads["r_amp_uv"] >= 0).all() and (leads["s_amp_uv"] <= 0).all()   # contract signs
-    limb = std[std["lead"].isin(STANDARD_LEADS[:6])]
-    prec = std[std["lead"].isin(STANDARD_LEADS[6:])]
+    limb = std[std["lead"].isin(LIMB_LEADS)]
+    prec = std[std["lead"].isin(PRECORDIAL_LEADS)]
     assert limb["t_amp_uv"].abs().between(100, 450).all()                # practice; aVR T is negative
     assert prec["t_amp_uv"].between(150, 800).all()                      # below the 1000 uV peaked-T value
     v23_man = std["lead"].isin(["V2", "V3"]) & std["ecg_id"].map(sex).eq("M")

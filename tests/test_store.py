@@ -16,7 +16,8 @@ from pipeline import store
 from pipeline.store import (OUTCOMES, SCHEMA_VERSION, StoreSchemaError, cardiosieve_schema, export_items,
                             import_reviews_csv, metadata, open_store, read_items, record_review, review,
                             upsert_items, wilson_interval, worklist_item, yield_table)
-from pipeline.worklist import (FINDING_COLUMNS, STATUS_CLOSED, STATUS_OPEN, STATUS_REOPENED, build_items)
+from pipeline.worklist import STATUS_CLOSED, STATUS_OPEN, STATUS_REOPENED, build_items
+from screens import FINDING_COLUMNS
 
 PG_URL = os.environ.get("CARDIOSIEVE_TEST_PG_URL")
 needs_pg = pytest.mark.skipif(not PG_URL, reason="CARDIOSIEVE_TEST_PG_URL not set (no PostgreSQL server)")

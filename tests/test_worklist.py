@@ -1,15 +1,15 @@
-"""Worklist items: episode folding, stable item_id, score and rank, explained away, reopen rule,
-atomic Parquet write. Each test builds its own small findings frame (FINDING_COLUMNS)."""
+"""Worklist items: episode folding, stable item_id, score and rank, explained away, reopen rule.
+Each test builds its own small findings frame (FINDING_COLUMNS)."""
 import hashlib
 import json
-import os
 
 import numpy as np
 import pandas as pd
 import pytest
 
-from pipeline.worklist import (FINDING_COLUMNS, ITEM_COLUMNS, STATUS_CLOSED, STATUS_EXPLAINED, STATUS_OPEN,
-                               STATUS_REOPENED, build_items, rank_items, write_parquet_atomic)
+from pipeline.worklist import (ITEM_COLUMNS, STATUS_CLOSED, STATUS_EXPLAINED, STATUS_OPEN, STATUS_REOPENED,
+                               build_items, rank_items)
+from screens import FINDING_COLUMNS
 
 NIGHT_END = pd.Timestamp("2026-03-02 02:00", tz="UTC")
 
@@ -316,29 +316,3 @@ def test_closed_item_reopens_for_a_more_severe_finding_with_the_reason(tier, sev
     assert row["status"] == STATUS_REOPENED and row["ecg_id"] == "e2"
     assert row["status_reason"].startswith("reopened: a more severe finding")
     assert "closed item (tier 2, severity 0.60)" in row["status_reason"]
-
-
-# --- atomic write -----------------------------------------------------------------------------
-def test_atomic_write_replaces_the_file(tmp_path):
-    path = tmp_path / "worklist.parquet"
-    write_parquet_atomic(pd.DataFrame({"a": [1]}), path)
-    write_parquet_atomic(pd.DataFrame({"a": [2, 3]}), path)
-    assert pd.read_parquet(path)["a"].tolist() == [2, 3]
-    assert os.listdir(tmp_path) == ["worklist.parquet"]
-
-
-def test_crash_mid_write_leaves_previous_file_intact(tmp_path, monkeypatch):
-    path = tmp_path / "worklist.parquet"
-    write_parquet_atomic(pd.DataFrame({"a": [1]}), path)
-
-    def half_write(self, target, **kw):      # the writer dies after writing part of the file
-        with open(target, "wb") as fh:
-            fh.write(b"PAR1 half a file")
-        raise OSError("disk full")
-
-    monkeypatch.setattr(pd.DataFrame, "to_parquet", half_write)
-    with pytest.raises(OSError):
-        write_parquet_atomic(pd.DataFrame({"a": [9, 9]}), path)
-    monkeypatch.undo()
-    assert pd.read_parquet(path)["a"].tolist() == [1]
-    assert os.listdir(tmp_path) == ["worklist.parquet"]   # no temporary file left behind

@@ -323,3 +323,26 @@ def test_bad_data_fails_without_retry_and_a_system_io_error_is_left_to_retry(tmp
     with pytest.raises(OSError) as caught:
         m.call_stage(mount_away)
     assert not isinstance(caught.value, AirflowFailException) and caught.value.errno == errno.EIO
+
+
+def test_every_bad_input_error_fails_without_retry():
+    """Every pipeline.errors.BadInputError fails the task at once, a store written by a newer
+    cardiosieve included: retrying cannot mend bad input."""
+    from airflow.sdk.exceptions import AirflowFailException
+
+    from pipeline.config import ConfigError
+    from pipeline.quality import QualityGateError
+    from pipeline.run import RunError
+    from pipeline.store import StoreSchemaError
+
+    m = load_dag_module()
+
+    def raising(exc):
+        def stage():
+            raise exc
+        return stage
+
+    for exc in (ConfigError("site.toml: bad"), RunError("--start must be before --end"),
+                QualityGateError(["lab_potassium_plausible"]), StoreSchemaError("store schema version 9 is newer")):
+        with pytest.raises(AirflowFailException, match=f"^{type(exc).__name__}: "):
+            m.call_stage(raising(exc))

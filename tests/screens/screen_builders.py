@@ -12,9 +12,11 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from pipeline.contract import STANDARD_LEADS
+
 ACQUIRED = pd.Timestamp("2026-03-01 10:00", tz="UTC")
 
-STANDARD = ["I", "II", "III", "aVR", "aVL", "aVF", "V1", "V2", "V3", "V4", "V5", "V6"]
+STANDARD = list(STANDARD_LEADS)
 
 # A normal adult 12-lead ECG in uV (common practice): upright P in II, dominant S in V1-V2,
 # dominant R in I, V5, V6; no ST deviation; T well below the peaked-T cut points.
