@@ -261,7 +261,8 @@ def site_rules(settings: Settings):
 
 
 def stage_screen(out, start, end, config=None, settings: Settings | None = None) -> dict:
-    """Run every registered screen over the aligned night; write findings.parquet."""
+    """Run every registered screen over the aligned night; write findings.parquet and each
+    screen's criterion table, criteria_<screen>.parquet (one row per aligned ECG)."""
     from screens import run_screens
 
     settings = settings or load_settings(config)
@@ -271,8 +272,15 @@ def stage_screen(out, start, end, config=None, settings: Settings | None = None)
     from pipeline.normalise import empty_table
     leads = [x for x in (read_stage(d, "ecg_lead"), read_stage(d, "prior_lead")) if x is not None]
     leads = pd.concat(leads, ignore_index=True) if leads else empty_table(c.ECG_LEAD)
-    findings = run_screens(pd.read_parquet(d / "aligned.parquet"), leads, rules)
+    findings, tables = run_screens(pd.read_parquet(d / "aligned.parquet"), leads, rules, with_criteria=True)
     write_parquet_atomic(findings, d / "findings.parquet")
+    # Each screen's criterion table (screens/_table.py), for analysts to filter by any criterion.
+    for name in rules.screens:
+        path = d / f"criteria_{name}.parquet"
+        if name in tables:
+            write_parquet_atomic(tables[name].assign(rule_version=rules[name].version), path)
+        else:
+            path.unlink(missing_ok=True)     # an empty night: no table from an earlier run stays
     by = findings.groupby(["screen", "tier"]).size()
     counts: dict[str, dict[str, int]] = {}
     for (screen, tier), n in by.items():
@@ -348,12 +356,31 @@ def stage_finish(out, start, end, summary: dict, settings: Settings | None = Non
     write_parquet_atomic(rejects, out / "rejects.parquet")
     write_parquet_atomic(pd.concat(aligned, ignore_index=True) if len(aligned) > 1 else aligned[0],
                   out / "aligned.parquet")
+    criteria = _publish_criteria(out, dirs)
     summary = {**summary, "interval": [lo.isoformat(), hi.isoformat()], "config": settings.source,
                "caution": CAUTION, "rejects_by_reason": _reasons(rejects)}
     summary["outputs"] = {"worklist": summary["worklist"]["path"], "aligned": str(out / "aligned.parquet"),
-                          "rejects": str(out / "rejects.parquet"), "summary": str(out / "run_summary.json")}
+                          "rejects": str(out / "rejects.parquet"), "summary": str(out / "run_summary.json"),
+                          **{f"criteria_{name}": str(path) for name, path in criteria.items()}}
     write_json_atomic(summary, out / "run_summary.json")
     return summary
+
+
+def _publish_criteria(out: Path, dirs: list[Path]) -> dict[str, Path]:
+    """OUT/criteria_<screen>.parquet: every chunk's criterion table of each screen, in time order.
+    A screen with no table this run (an empty night) leaves no stale file from an earlier run."""
+    from screens import SCREENS
+
+    written = {}
+    for name in SCREENS:
+        path = out / f"criteria_{name}.parquet"
+        parts = [pd.read_parquet(d / path.name) for d in dirs if (d / path.name).exists()]
+        if parts:
+            write_parquet_atomic(pd.concat(parts, ignore_index=True) if len(parts) > 1 else parts[0], path)
+            written[name] = path
+        else:
+            path.unlink(missing_ok=True)
+    return written
 
 
 def _run_chunk(lake, out, lo, hi, settings: Settings, db, quality: bool) -> dict:

@@ -14,7 +14,7 @@ import pandas as pd
 
 from pipeline.frames import whole_years
 from pipeline.jsontext import to_json
-from screens.criteria import Threshold, as_float_array
+from screens.criteria import as_float_array
 
 FINDING_COLUMNS = [
     "ecg_id",
@@ -217,14 +217,3 @@ def fmt_leads(leads: Sequence[str], order: Sequence[str]) -> str:
             out.append(chosen[j])
         i = j + 1
     return ", ".join(out)
-
-
-def fired(*pairs: tuple[Threshold, bool]) -> list[dict]:
-    """Evidence `rules` list: the thresholds whose flag is true, in the given order, without repeats."""
-    seen: set[str] = set()
-    out = []
-    for th, hit in pairs:
-        if hit and th.key not in seen:
-            seen.add(th.key)
-            out.append(th.as_dict())
-    return out

@@ -88,9 +88,3 @@ def wide(leads: pd.DataFrame, ecg_ids: pd.Series | np.ndarray, columns: Sequence
         g = grids[c][take]
         out[c] = pd.DataFrame(np.column_stack([g, -g[:, ALL_LEADS.index("aVR")]]), columns=names)
     return out
-
-
-def lead_names(mask: pd.DataFrame, row: int) -> list[str]:
-    """Names of the leads whose entry is true in positional `row` of a bool lead frame."""
-    r = mask.iloc[row]
-    return [str(k) for k, v in r.items() if bool(v)]

@@ -21,11 +21,12 @@ from typing import Sequence
 import numpy as np
 import pandas as pd
 
+from screens._frame import SCORE_PART_KEYS
 from screens.criteria import Threshold
 
 ID_COLUMNS = ["ecg_id", "patient_id", "acquired_at"]
-# Score parts every screen's table carries as typed columns (screens._frame.SCORE_PART_KEYS).
-SCORE_COLUMNS = ["severity", "lab_confirmed", "lab_gap_min", "trend", "prior_present", "troponin_ratio"]
+# Score parts every screen's table carries as typed columns.
+SCORE_COLUMNS = list(SCORE_PART_KEYS)
 
 _HEADER = "Criterion table (column, unit, source)"
 

@@ -147,14 +147,14 @@ from screens._frame import (
     score_parts,
     text,
 )
-from screens._leads import DISPLAY_ORDER, PRECORDIAL, wide
+from screens._leads import DISPLAY_ORDER, LIMB, PRECORDIAL, wide
 from screens._table import criterion_table, fired_rules, lead_lists, split_leads
 from screens.criteria import Rules, load_rules
 
 SCREEN = "hyperkalemia"
 REQUIRED = ["ecg_id", "patient_id", "acquired_at", "k_mmol_l", "heart_rate_bpm", "pr_ms", "qrs_ms"]
 
-T_LIMB_LEADS = ["I", "II", "III", "aVL", "aVF"]  # aVR's T is normally inverted: not used for peaking
+T_LIMB_LEADS = [lead for lead in LIMB if lead != "aVR"]  # aVR's T is normally inverted: not used for peaking
 T_LEADS = PRECORDIAL + T_LIMB_LEADS
 SIGN_NAMES = ("peaked_t", "qrs", "pr", "p_flat", "brady")
 

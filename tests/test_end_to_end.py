@@ -153,6 +153,25 @@ def test_every_planted_case_is_found_at_its_intended_tier_or_more_urgent(backfil
     assert len(st_elev) > 30 and st_elev["tier"].max() <= 2
 
 
+def test_criterion_tables_let_an_analyst_filter_by_any_criterion(backfill, cases):
+    # OUT/criteria_<screen>.parquet: one row per aligned ECG and screen, typed criterion columns.
+    tables = {s: pd.read_parquet(backfill.out / f"criteria_{s}.parquet") for s in ("hyperkalemia", "long_qt", "st_deviation")}
+    for table in tables.values():
+        assert sorted(table["ecg_id"]) == sorted(backfill.aligned["ecg_id"])
+    st = tables["st_deviation"]
+    # Filtering on one criterion column finds the planted pattern, and the tiers agree with the findings.
+    peri = set(st.loc[st["pericarditis_like"], "ecg_id"])
+    planted_peri = set(cases.loc[cases["detail"].str.startswith("pericarditis-like"), "ecg_id"])
+    assert planted_peri and planted_peri <= peri
+    posterior = set(st.loc[st["pattern"] == "posterior_depression", "ecg_id"])
+    assert set(cases.loc[cases["detail"].str.startswith("posterior: ST depression V1-V3 without"), "ecg_id"]) <= posterior
+    found = backfill.findings[backfill.findings["screen"] == "st_deviation"].set_index("ecg_id")["tier"]
+    assert st.set_index("ecg_id").loc[found.index, "tier"].tolist() == found.tolist()
+    hk = tables["hyperkalemia"]
+    assert set(hk.loc[hk["k_severe"] & hk["k_hemolyzed"], "ecg_id"]) >= set(
+        cases.loc[cases["detail"].str.startswith("haemolysed specimen, K 6.6"), "ecg_id"])
+
+
 def test_planted_cases_expected_silent_get_no_finding_of_their_screen(backfill, cases):
     silent = cases[cases["expect_finding"] == "false"]
     assert set(silent["kind"]) == {"st_deviation", "normal"}    # LBBB-discordant controls and near misses
