@@ -48,6 +48,7 @@ class Loaded:
     clean: pd.DataFrame
     rejects: pd.DataFrame
     files: int
+    placed: pd.DataFrame | None = None   # lab: rejected rows that can still be placed (normalise.py)
 
     @property
     def rows_in(self) -> int:
@@ -104,7 +105,7 @@ def read_table(lake: str | Path, table: c.Table, settings: Settings, *, scope: s
     wanted = None if columns is None else set(columns) | {col.name for col in table.columns if col.required}
     site_names = {v: k for k, v in settings.columns.get(table.name, {}).items()}  # contract -> site
 
-    parts, rejects = [], []
+    parts, rejects, placed = [], [], []
     for schema, group in _schema_groups(files):
         present = [name for name in schema.names if _contract_name(name, settings, table) is not None
                    and (wanted is None or _contract_name(name, settings, table) in wanted)]
@@ -118,13 +119,18 @@ def read_table(lake: str | Path, table: c.Table, settings: Settings, *, scope: s
                               keep=keep, partition_dates=partition_dates)
         parts.append(got.clean)
         rejects.append(got.rejects)
+        if got.placed is not None:
+            placed.append(got.placed)
     if not parts:
         return Loaded(clean=empty_table(table), rejects=empty_rejects(), files=0)
     clean = pd.concat(parts, ignore_index=True) if len(parts) > 1 else parts[0]
     dedup = reject_duplicates(clean, table, scope)
     rejects.append(dedup.rejects)
+    if dedup.placed is not None:
+        placed.append(dedup.placed)
+    placed_all = pd.concat(placed, ignore_index=True) if placed else None
     return Loaded(clean=dedup.clean.drop(columns=FILE_COLUMN), rejects=_concat_rejects(rejects),
-                  files=len(files))
+                  files=len(files), placed=placed_all)
 
 
 def _contract_name(site_name: str, settings: Settings, table: c.Table) -> str | None:

@@ -29,10 +29,14 @@ _FALSE = {"false", "f", "0", "no", "n"}
 FILE_COLUMN = "__file"   # the loader's record of which file each row came from
 
 
+PLACED_COLUMNS = ["result_id", "patient_id", "collected_at", "analyte", "reason"]
+
+
 @dataclass
 class Normalised:
     clean: pd.DataFrame
     rejects: pd.DataFrame
+    placed: pd.DataFrame | None = None   # lab only: rejected rows whose patient and time could be read
 
 
 class _Problems:
@@ -116,7 +120,13 @@ def _split(frame, table, problems, scope, in_scope) -> Normalised:
         "reason": problems.reason[bad],
         "detail": problems.detail[bad],
     }, columns=c.REJECT_COLUMNS)
-    return Normalised(clean=frame.loc[ok].reset_index(drop=True), rejects=rejects.astype("str"))
+    placed = None
+    if table is c.LAB:
+        # A rejected lab row whose patient, time and analyte could still be read: alignment says
+        # "a result was rejected (reason)" rather than "none measured". Never the value itself.
+        placed = frame.loc[bad, PLACED_COLUMNS[:-1]].assign(reason=problems.reason[bad])
+        placed = placed[placed[["patient_id", "collected_at", "analyte"]].notna().all(axis=1)].reset_index(drop=True)
+    return Normalised(clean=frame.loc[ok].reset_index(drop=True), rejects=rejects.astype("str"), placed=placed)
 
 
 def _in_scope(frame, table, window, keep, partition_dates) -> np.ndarray:

@@ -88,6 +88,10 @@ def stage_load(lake, out, start, end, config=None, settings: Settings | None = N
     write_parquet_atomic(night.clean, d / "ecg.parquet")
     write_parquet_atomic(ecg_history, d / "ecg_history.parquet")
     write_parquet_atomic(lab.clean, d / "lab.parquet")
+    if lab.placed is not None and len(lab.placed):
+        write_parquet_atomic(lab.placed, d / "lab_rejected_placed.parquet")
+    else:
+        (d / "lab_rejected_placed.parquet").unlink(missing_ok=True)
     write_parquet_atomic(patient.clean, d / "patient.parquet")
     has_medication = (Path(lake) / "medication").is_dir()
     if has_medication:
@@ -181,18 +185,21 @@ def stage_align(out, start, end, config=None, settings: Settings | None = None, 
 
 
 def _gate_lab_rejects(d: Path) -> pd.DataFrame | None:
-    """Lab rows the quality gate rejected, placed by patient and time (from the loaded lab table),
-    so that the aligned table can say "a potassium was rejected" rather than "none measured".
-    None when the gate did not run. (Rows the loader rejected cannot be placed: their patient or
-    time may be what was wrong.)"""
+    """Rejected lab rows placed by patient and time, so that the aligned table can say "a
+    potassium was rejected" rather than "none measured": the loader's (whose patient, time and
+    analyte could still be read) and the quality gate's (placed from the loaded lab table)."""
+    parts = []
+    if (d / "lab_rejected_placed.parquet").exists():
+        parts.append(pd.read_parquet(d / "lab_rejected_placed.parquet"))
     path = d / "rejects_quality.parquet"
-    if not path.exists() or not (d / "lab.parquet").exists():
-        return None
-    rejects = pd.read_parquet(path, columns=["table", "row_key", "reason"])
-    rejects = rejects[rejects["table"] == "lab"]
-    lab = pd.read_parquet(d / "lab.parquet", columns=["result_id", "patient_id", "collected_at", "analyte"])
-    placed = lab.merge(rejects.rename(columns={"row_key": "result_id"})[["result_id", "reason"]], on="result_id")
-    return placed.drop_duplicates("result_id")
+    if path.exists() and (d / "lab.parquet").exists():
+        rejects = pd.read_parquet(path, columns=["table", "row_key", "reason"])
+        rejects = rejects[rejects["table"] == "lab"]
+        lab = pd.read_parquet(d / "lab.parquet", columns=["result_id", "patient_id", "collected_at", "analyte"])
+        placed = lab.merge(rejects.rename(columns={"row_key": "result_id"})[["result_id", "reason"]], on="result_id")
+        parts.append(placed.drop_duplicates("result_id"))
+    parts = [p for p in parts if len(p)]
+    return pd.concat(parts, ignore_index=True) if parts else None
 
 
 def trailing_counts(lake, lo: pd.Timestamp, hi: pd.Timestamp, nights: int = 28) -> dict:

@@ -140,3 +140,22 @@ def test_a_potassium_the_gate_rejected_is_not_reported_as_none_measured(tmp_path
     assert len(hk) == 1 and "rejected" in hk["summary"].iloc[0]
     assert "No potassium in the lab window" not in hk["summary"].iloc[0]
     assert any("rejected" in c for c in json.loads(hk["caveats"].iloc[0]))
+
+
+def test_a_potassium_the_contract_rejected_is_named_with_its_reason_not_as_none_measured(tmp_path):
+    # A potassium in an unknown unit is rejected by the loader (pipeline/contract.py). Its patient,
+    # time and analyte can still be read, so the ECG says "rejected (unknown_unit)": missing data
+    # is unknown, never absent. The value itself is never carried.
+    import pandas as pd
+
+    lake = write_lake(tmp_path / "lake", ecg=[ecg_row("E1", "P1", heart_rate_bpm=44.0)],
+                      labs=[lab_row("R1", "P1", value=66.0, unit="mg/L")], patients=[patient_row("P1")])
+    out = tmp_path / "out"
+    assert main(["run", "--lake", str(lake), "--out", str(out), *ARGS]) == 0
+    aligned = pd.read_parquet(out / "aligned.parquet")
+    assert aligned["k_rejected_reason"].tolist() == ["unknown_unit"]
+    rejects = pd.read_parquet(out / "rejects.parquet")
+    assert rejects[["table", "row_key", "reason"]].values.tolist() == [["lab", "R1", "unknown_unit"]]
+    items = pd.read_parquet(out / "worklist.parquet")
+    summary = items.loc[items["screen"] == "hyperkalemia", "summary"].iloc[0]
+    assert "Potassium result rejected (unknown_unit)" in summary and "66" not in summary
