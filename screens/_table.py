@@ -16,12 +16,12 @@ The columns of each screen's table are documented in its module docstring, under
 from __future__ import annotations
 
 import re
-from typing import Sequence
+from typing import Callable, Sequence
 
 import numpy as np
 import pandas as pd
 
-from screens._frame import SCORE_PART_KEYS
+from screens._frame import NO_FINDING, SCORE_PART_KEYS, empty_findings
 from screens.criteria import Threshold
 
 ID_COLUMNS = ["ecg_id", "patient_id", "acquired_at"]
@@ -92,3 +92,18 @@ def documented_columns(doc: str) -> dict[str, tuple[str, str]]:
         if m:
             out[m.group(1)] = (m.group(2), m.group(3))
     return out
+
+
+def dress_flagged(aligned: pd.DataFrame, compute: Callable[[], tuple[pd.DataFrame, object]],
+                  dress: Callable[[pd.DataFrame, object, np.ndarray], pd.DataFrame], with_criteria: bool):
+    """The one path of every screen: `compute()` gives the criterion table (and anything the
+    dressing needs besides, e.g. per-lead values), `dress(table, extra, hit)` the findings of the
+    flagged rows `hit`. Returns the findings, or (findings, table) with_criteria; no table for an
+    empty aligned frame."""
+    if len(aligned) == 0:
+        table, findings = None, empty_findings()
+    else:
+        table, extra = compute()
+        hit = np.flatnonzero(table["tier"].to_numpy() < NO_FINDING)
+        findings = dress(table, extra, hit) if len(hit) else empty_findings()
+    return (findings, table) if with_criteria else findings

@@ -137,7 +137,6 @@ import pandas as pd
 from screens._frame import (
     NO_FINDING,
     build_findings,
-    empty_findings,
     flag,
     fmt,
     fmt_leads,
@@ -148,7 +147,7 @@ from screens._frame import (
     text,
 )
 from screens._leads import DISPLAY_ORDER, LIMB, PRECORDIAL, wide
-from screens._table import criterion_table, fired_rules, lead_lists, split_leads
+from screens._table import criterion_table, dress_flagged, fired_rules, lead_lists, split_leads
 from screens.criteria import Rules, load_rules
 
 SCREEN = "hyperkalemia"
@@ -346,13 +345,8 @@ def screen_hyperkalemia(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules
     """Hyperkalemia findings for the aligned ECGs: the flagged rows of `criteria_hyperkalemia`,
     dressed. Returns the findings frame (FINDING_COLUMNS); with_criteria, (findings, criterion table)."""
     rules = rules or load_rules()
-    if len(aligned) == 0:
-        table, findings = None, empty_findings()
-    else:
-        table = criteria_hyperkalemia(aligned, leads, rules)
-        hit = np.flatnonzero(table["tier"].to_numpy() < NO_FINDING)
-        findings = _dress(aligned, table, hit, rules[SCREEN]) if len(hit) else empty_findings()
-    return (findings, table) if with_criteria else findings
+    return dress_flagged(aligned, lambda: (criteria_hyperkalemia(aligned, leads, rules), None),
+                         lambda table, _, hit: _dress(aligned, table, hit, rules[SCREEN]), with_criteria)
 
 
 def _dress(aligned: pd.DataFrame, table: pd.DataFrame, hit: np.ndarray, r) -> pd.DataFrame:

@@ -178,7 +178,6 @@ import pandas as pd
 from screens._frame import (
     NO_FINDING,
     build_findings,
-    empty_findings,
     flag,
     fmt,
     num,
@@ -188,7 +187,7 @@ from screens._frame import (
     text,
     age_years,
 )
-from screens._table import criterion_table, fired_rules
+from screens._table import criterion_table, dress_flagged, fired_rules
 from screens.criteria import Rules, load_rules
 
 SCREEN = "long_qt"
@@ -468,13 +467,8 @@ def screen_long_qt(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | No
     """Long-QT risk findings for the aligned ECGs: the flagged rows of `criteria_long_qt`, dressed.
     Returns the findings frame (FINDING_COLUMNS); with_criteria, (findings, criterion table)."""
     rules = rules or load_rules()
-    if len(aligned) == 0:
-        table, findings = None, empty_findings()
-    else:
-        table = criteria_long_qt(aligned, leads, rules)
-        hit = np.flatnonzero(table["tier"].to_numpy() < NO_FINDING)
-        findings = _dress(aligned, table, hit, rules[SCREEN]) if len(hit) else empty_findings()
-    return (findings, table) if with_criteria else findings
+    return dress_flagged(aligned, lambda: (criteria_long_qt(aligned, leads, rules), None),
+                         lambda table, _, hit: _dress(aligned, table, hit, rules[SCREEN]), with_criteria)
 
 
 def _dress(aligned: pd.DataFrame, table: pd.DataFrame, hit: np.ndarray, r) -> pd.DataFrame:

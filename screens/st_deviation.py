@@ -215,7 +215,6 @@ from screens._frame import (
     NO_FINDING,
     age_years,
     build_findings,
-    empty_findings,
     flag,
     fmt,
     fmt_leads,
@@ -235,7 +234,7 @@ from screens._leads import (
     group_pairs,
     wide,
 )
-from screens._table import criterion_table, fired_rules, lead_lists, split_leads
+from screens._table import criterion_table, dress_flagged, fired_rules, lead_lists, split_leads
 from screens.criteria import Rules, ScreenRules, load_rules
 
 SCREEN = "st_deviation"
@@ -737,13 +736,9 @@ def screen_st_deviation(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules
     dressed. Returns the findings frame (FINDING_COLUMNS, with territories); with_criteria, (findings,
     criterion table)."""
     rules = rules or load_rules()
-    if len(aligned) == 0:
-        table, findings = None, empty_findings()
-    else:
-        table, lead_frames = _criteria(aligned, leads, rules)
-        hit = np.flatnonzero(table["tier"].to_numpy() < NO_FINDING)
-        findings = _dress(aligned, table, lead_frames, hit, rules[SCREEN]) if len(hit) else empty_findings()
-    return (findings, table) if with_criteria else findings
+    return dress_flagged(aligned, lambda: _criteria(aligned, leads, rules),
+                         lambda table, lead_frames, hit: _dress(aligned, table, lead_frames, hit, rules[SCREEN]),
+                         with_criteria)
 
 
 def _dress(aligned, table, lead_frames, hit, r) -> pd.DataFrame:
