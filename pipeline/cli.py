@@ -27,7 +27,8 @@ def build_parser() -> argparse.ArgumentParser:
     run = sub.add_parser("run", help="screen the ECGs acquired in [start, end) and write the worklist",
                          description="Screen the ECGs acquired in [--start, --end) (UTC; a bound without "
                                      "offset is read as UTC) and write OUT/worklist.parquet, "
-                                     "OUT/aligned.parquet, OUT/rejects.parquet and OUT/run_summary.json.")
+                                     "OUT/aligned.parquet, OUT/rejects.parquet, OUT/criteria_<screen>.parquet (each "
+                                     "screen's criterion table) and OUT/run_summary.json.")
     _lake_args(run)
     run.add_argument("--out", required=True, help="output folder")
     run.add_argument("--start", required=True, help="first instant screened, ISO 8601 (e.g. 2026-11-29)")
