@@ -140,6 +140,7 @@ Criterion table (column, unit, source)
     walls_elevated                  count   LOCAL           walls (inferior, lateral, anterior) with elevation
     pericarditis_like               bool    PRACTICE        the pericarditis-like distribution (caveat, one tier lower)
     qrs_ms                          ms      cart            QRS duration
+    qrs_wide                        bool    PRACTICE        QRS >= 120 ms (plain cut points used without an LBBB shape: caveat)
     paced                           bool    cart            paced rhythm
     lbbb_shape                      bool    LOCAL           QRS >= 120 ms, V1 S-dominant, I and V6 R-dominant
     lbbb_shape_unknown              bool    LOCAL           QRS >= 120 ms and a shape lead missing
@@ -657,7 +658,7 @@ def _criteria(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | None) -
         "widespread_depression_count": n_wide_dep.astype("int64"),
         "std_contiguous": ev["dep_any"], "std_alone": is_dep, "std_leads": lead_lists(ev["dep_leads"], DISPLAY_ORDER),
         "walls_elevated": np.asarray(ev["walls"], dtype="int64"), "pericarditis_like": pericarditis,
-        "qrs_ms": qrs, "paced": paced, "lbbb_shape": ev["lbbb"], "lbbb_shape_unknown": ev["shape_unknown"],
+        "qrs_ms": qrs, "qrs_wide": r["lbbb_qrs"].met(qrs), "paced": paced, "lbbb_shape": ev["lbbb"], "lbbb_shape_unknown": ev["shape_unknown"],
         "lbbb_or_paced": ev["confounded"], "fired_lbbb_qrs": is_lbbb & ev["lbbb"],
         "sgarbossa_points": np.asarray(ev["sg_points"], dtype="int64"), "sgarbossa_positive": ev["sgarbossa"] & is_lbbb,
         "smith_positive": ev["smith"] & ev["confounded"],
@@ -840,7 +841,7 @@ def _dress(aligned, table, lead_frames, hit, r) -> pd.DataFrame:
         cav = []
         if pat == P_LBBB:
             cav.append(CAVEAT_PACED if paced[i] else CAVEAT_LBBB.format(qrs=fmt(qrs[i])))
-        elif r["lbbb_qrs"].met(qrs[i]) and pat != P_NOT_EVALUABLE:
+        elif b("qrs_wide")[i] and pat != P_NOT_EVALUABLE:
             cav.append((CAVEAT_WIDE_SHAPE_UNKNOWN if b("lbbb_shape_unknown")[i] else CAVEAT_WIDE_OTHER).format(qrs=fmt(qrs[i])))
         if b("lvh_explains")[i]:
             what = ("ST elevation confined to V1-V3 and proportionate to the S wave" if pat == P_ELEVATION
