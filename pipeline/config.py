@@ -7,6 +7,7 @@ is a ConfigError, which the CLI turns into exit code 2 with a one-line reason.
 """
 from __future__ import annotations
 
+import math
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -84,12 +85,54 @@ def load_settings(path: str | Path | None = None) -> Settings:
     return settings_from_dict(raw, source=path.name)
 
 
+_SITE_KEYS = {"name", "timezone"}
+_UNITS_KEYS = {"ecg", "ecg_lead"}
+_TROPONIN_KEYS = {"code", "url_ng_l"}
+
+
+def _table(raw: dict, key: str, source: str, where: str) -> dict:
+    value = raw.get(key, {})
+    if not isinstance(value, dict):
+        raise ConfigError(f"{source}: {where} must be a table of key = value")
+    return value
+
+
+def _known_keys(table: dict, known: set[str], source: str, where: str) -> None:
+    unknown = set(table) - known
+    if unknown:
+        raise ConfigError(f"{source}: {where} unknown key(s) {sorted(unknown)}; known: {sorted(known)}")
+
+
+def _string_list(value, source: str, where: str) -> tuple[str, ...]:
+    """A list of strings. A plain string is refused: `potassium = "2823-3"` would otherwise be
+    read letter by letter, and every potassium would silently drop out."""
+    if not isinstance(value, list) or not all(isinstance(v, str) and v.strip() for v in value):
+        raise ConfigError(f"{source}: {where} must be a list of strings, e.g. [\"a\", \"b\"]")
+    return tuple(value)
+
+
+def _number(value, source: str, where: str, *, positive: bool = False) -> float:
+    """A finite number, not negative (not zero when `positive`); true/false are not numbers."""
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) \
+            or value < 0 or (positive and value == 0):
+        kind = "a positive" if positive else "a non-negative"
+        raise ConfigError(f"{source}: {where} must be {kind} finite number")
+    return float(value)
+
+
 def settings_from_dict(raw: dict, source: str = "config") -> Settings:
+    """Settings from a parsed config. Strict: every section, key and type is checked here, before
+    anything is read or written; a slip is a ConfigError naming the setting."""
     unknown = set(raw) - _SECTIONS
     if unknown:
         raise ConfigError(f"{source}: unknown section(s) {sorted(unknown)}; known: {sorted(_SECTIONS)}")
-    site = raw.get("site", {})
+    site = _table(raw, "site", source, "[site]")
+    _known_keys(site, _SITE_KEYS, source, "[site]")
+    if not isinstance(site.get("name", ""), str):
+        raise ConfigError(f"{source}: [site] name must be a string")
     tz = site.get("timezone")
+    if tz is not None and not isinstance(tz, str):
+        raise ConfigError(f"{source}: [site] timezone must be a string such as \"Europe/London\"")
     if tz is not None:
         from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
         try:
@@ -98,16 +141,20 @@ def settings_from_dict(raw: dict, source: str = "config") -> Settings:
             raise ConfigError(f"{source}: [site] timezone {tz!r} is not a known IANA time zone") from None
 
     columns = {}
-    for table, mapping in raw.get("columns", {}).items():
+    for table, mapping in _table(raw, "columns", source, "[columns]").items():
         if table not in TABLES:
             raise ConfigError(f"{source}: [columns.{table}] names no contract table")
+        if not isinstance(mapping, dict):
+            raise ConfigError(f"{source}: [columns.{table}] must be a table of site name = contract name")
         for site_name, contract_name in mapping.items():
             if contract_name not in TABLES[table].column_names:
                 raise ConfigError(f"{source}: [columns.{table}] maps {site_name!r} to unknown column {contract_name!r}")
         columns[table] = dict(mapping)
 
-    units = raw.get("units", {})
-    time_units = dict(units.get("ecg", {}))
+    units = _table(raw, "units", source, "[units]")
+    _known_keys(units, _UNITS_KEYS, source, "[units]")
+    time_units = dict(_table(units, "ecg", source, "[units.ecg]"))
+    _known_keys(_table(units, "ecg_lead", source, "[units.ecg_lead]"), {"amplitude"}, source, "[units.ecg_lead]")
     for col, unit in time_units.items():
         if col not in ("rr_ms", "pr_ms", "qrs_ms", "qt_ms"):
             raise ConfigError(f"{source}: [units.ecg] {col!r} is not an interval column")
@@ -118,33 +165,52 @@ def settings_from_dict(raw: dict, source: str = "config") -> Settings:
         raise ConfigError(f"{source}: [units.ecg_lead] amplitude {amplitude!r} not one of {sorted(AMPLITUDE_UNITS)}")
 
     analytes = dict(DEFAULT_ANALYTES)
-    for name, codes in raw.get("analytes", {}).items():
+    for name, codes in _table(raw, "analytes", source, "[analytes]").items():
         if name not in DEFAULT_ANALYTES:
             raise ConfigError(f"{source}: [analytes] {name!r} is not one of {sorted(DEFAULT_ANALYTES)}")
-        analytes[name] = tuple(str(c) for c in codes)
+        analytes[name] = _string_list(codes, source, f"[analytes] {name}")
 
     troponin = []
-    for i, assay in enumerate(raw.get("troponin", [])):
-        try:
-            troponin.append(Assay(str(assay["code"]), float(assay["url_ng_l"])))
-        except (KeyError, TypeError, ValueError):
-            raise ConfigError(f"{source}: [[troponin]] entry {i + 1} needs code and a numeric url_ng_l") from None
+    entries = raw.get("troponin", [])
+    if not isinstance(entries, list):
+        raise ConfigError(f"{source}: troponin must be written as [[troponin]] entries")
+    for i, assay in enumerate(entries):
+        where = f"[[troponin]] entry {i + 1}"
+        if not isinstance(assay, dict) or not isinstance(assay.get("code"), str) or "url_ng_l" not in assay:
+            raise ConfigError(f"{source}: {where} needs code (a string) and url_ng_l")
+        _known_keys(assay, _TROPONIN_KEYS, source, where)
+        troponin.append(Assay(assay["code"], _number(assay["url_ng_l"], source, f"{where} url_ng_l", positive=True)))
 
-    drugs = {cls: tuple(str(d).strip().lower() for d in names) for cls, names in raw.get("drugs", {}).items()}
+    drugs = {cls: tuple(d.strip().lower() for d in _string_list(names, source, f"[drugs] {cls}"))
+             for cls, names in _table(raw, "drugs", source, "[drugs]").items()}
     for cls in drugs:
         if cls not in ("qt_prolonging", "loop_diuretic", "k_lowering"):
             raise ConfigError(f"{source}: [drugs] class {cls!r} is not qt_prolonging, loop_diuretic or k_lowering")
 
     windows = dict(DEFAULT_WINDOWS)
-    for key, value in raw.get("windows", {}).items():
+    for key, value in _table(raw, "windows", source, "[windows]").items():
         if key not in DEFAULT_WINDOWS:
             raise ConfigError(f"{source}: [windows] unknown key {key!r}; known: {sorted(DEFAULT_WINDOWS)}")
-        if not isinstance(value, (int, float)) or value < 0:
-            raise ConfigError(f"{source}: [windows] {key} must be a non-negative number")
-        windows[key] = float(value)
+        windows[key] = _number(value, source, f"[windows] {key}")
+    lab_codes = _table(raw, "lab_codes", source, "[lab_codes]")
+    if not all(isinstance(v, str) for v in lab_codes.values()):
+        raise ConfigError(f"{source}: [lab_codes] maps each local code to a LOINC code string")
+    rules = _table(raw, "rules", source, "[rules]")
+    _check_rules(rules, source)
 
     return Settings(source=source, site_name=str(site.get("name", "")), timezone=tz, columns=columns,
                     time_units=time_units, amplitude_unit=amplitude,
-                    lab_codes={str(k): str(v) for k, v in raw.get("lab_codes", {}).items()},
+                    lab_codes={str(k): v for k, v in lab_codes.items()},
                     analytes=analytes, troponin=tuple(troponin), drugs=drugs, windows=windows,
-                    rules=dict(raw.get("rules", {})))
+                    rules=dict(rules))
+
+
+def _check_rules(rules: dict, source: str) -> None:
+    """[rules.<screen>] overrides are checked at start-up against the shipped rule file, not after
+    alignment: an unknown screen or key, or a value of the wrong kind, is a ConfigError."""
+    from screens.criteria import load_rules   # the rule file and its checks live with the screens
+
+    try:
+        load_rules(rules or None, source_name=source)
+    except ValueError as exc:
+        raise ConfigError(f"{source}: [rules] {exc}") from None

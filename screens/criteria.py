@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import math
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -146,8 +147,8 @@ def _check_setting(screen: str, key: str, shipped: Any, value: Any) -> Any:
             raise ValueError(f"rules.{screen}.{key}: must be true or false")
         return value
     if isinstance(shipped, (int, float)):
-        if isinstance(value, bool) or not isinstance(value, (int, float)):
-            raise ValueError(f"rules.{screen}.{key}: must be a number")
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+            raise ValueError(f"rules.{screen}.{key}: must be a finite number")
         return type(shipped)(value)
     if not isinstance(value, type(shipped)):
         raise ValueError(f"rules.{screen}.{key}: must be a {type(shipped).__name__}")
@@ -195,8 +196,8 @@ def load_rules(
             raise ValueError(f"rules override for screen {screen!r} must be a table of key = value")
         for key, value in local.items():
             if key in thresholds:
-                if isinstance(value, bool) or not isinstance(value, (int, float)):
-                    raise ValueError(f"rules.{screen}.{key}: threshold override must be a number")
+                if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+                    raise ValueError(f"rules.{screen}.{key}: threshold override must be a finite number")
                 old = thresholds[key]
                 thresholds[key] = Threshold(key, old.op, float(value), old.unit, f"site: {source_name}")
             elif key in settings:
