@@ -40,7 +40,13 @@ DEFAULT_WINDOWS = {
     "episode_h": 72.0,           # findings of one screen and patient this close fold into one item
 }
 
-_SECTIONS = {"site", "columns", "units", "lab_codes", "analytes", "troponin", "drugs", "windows", "rules"}
+_SECTIONS = {"site", "columns", "units", "lab_codes", "analytes", "troponin", "drugs", "windows", "rules", "quality"}
+
+# A missing feed (no ECG rows tonight; ECGs but no lab rows for their patients) stops the run by
+# default: findings would otherwise drop to lower tiers with exit 0. A site may lower it to a
+# warning. The lab check is critical only on nights with at least lab_feed_min_ecgs ECGs (a very
+# small night may truly have no labs; local choice).
+DEFAULT_QUALITY = {"missing_feed": "critical", "lab_feed_min_ecgs": 20.0}
 
 
 @dataclass(frozen=True)
@@ -63,6 +69,7 @@ class Settings:
     drugs: dict[str, tuple[str, ...]] = field(default_factory=dict)    # class -> lower-case drug names
     windows: dict[str, float] = field(default_factory=lambda: dict(DEFAULT_WINDOWS))
     rules: dict[str, dict] = field(default_factory=dict)               # screen -> threshold overrides
+    quality: dict[str, object] = field(default_factory=lambda: dict(DEFAULT_QUALITY))
 
     def analyte_of_code(self) -> dict[str, str]:
         """LOINC code -> analyte name, troponin assays included."""
@@ -197,12 +204,21 @@ def settings_from_dict(raw: dict, source: str = "config") -> Settings:
         raise ConfigError(f"{source}: [lab_codes] maps each local code to a LOINC code string")
     rules = _table(raw, "rules", source, "[rules]")
     _check_rules(rules, source)
+    quality_raw = _table(raw, "quality", source, "[quality]")
+    _known_keys(quality_raw, set(DEFAULT_QUALITY), source, "[quality]")
+    quality = dict(DEFAULT_QUALITY)
+    if "missing_feed" in quality_raw:
+        if quality_raw["missing_feed"] not in ("critical", "warning"):
+            raise ConfigError(f"{source}: [quality] missing_feed must be \"critical\" or \"warning\"")
+        quality["missing_feed"] = quality_raw["missing_feed"]
+    if "lab_feed_min_ecgs" in quality_raw:
+        quality["lab_feed_min_ecgs"] = _number(quality_raw["lab_feed_min_ecgs"], source, "[quality] lab_feed_min_ecgs")
 
     return Settings(source=source, site_name=str(site.get("name", "")), timezone=tz, columns=columns,
                     time_units=time_units, amplitude_unit=amplitude,
                     lab_codes={str(k): v for k, v in lab_codes.items()},
                     analytes=analytes, troponin=tuple(troponin), drugs=drugs, windows=windows,
-                    rules=dict(rules))
+                    rules=dict(rules), quality=quality)
 
 
 def _check_rules(rules: dict, source: str) -> None:

@@ -328,6 +328,8 @@ def run_quality(tables: Mapping[str, pd.DataFrame], run_end, trailing_counts: Ma
             n = (tonight_counts or {}).get(table, len(present[table]))
             rows.append(_row_count(row_count_check(table), int(n), counts, qs))
 
+    rows.extend(_feed_checks(present, tonight_counts, qs))
+
     checks = pd.DataFrame(rows, columns=CHECK_COLUMNS).astype({"passed": "boolean"})
     bad = checks[checks["severity"].eq(CRITICAL) & checks["passed"].eq(False)]
     critical = [_critical_message(r) for r in bad.itertuples(index=False)]
@@ -494,7 +496,31 @@ def _row_count(chk: Check, n: int, counts, qs: QualitySettings) -> dict:
     return _check_row(chk, n, 0, passed=bool(low <= n <= high), detail=detail)
 
 
+def _feed_checks(present, tonight_counts, qs: QualitySettings) -> list[dict]:
+    """Is a feed missing? No ECG rows tonight, or ECGs but no lab rows for their patients: a
+    critical failure by default (site config [quality] missing_feed), since the screens would
+    otherwise rank hyperkalaemia without any potassium and exit 0. Counts only, no values."""
+    site = qs.site.quality
+    limit = 0.0 if site["missing_feed"] == "critical" else None
+    out = []
+    if "ecg" not in present:
+        return out
+    n_ecg = int((tonight_counts or {}).get("ecg", len(present["ecg"])))
+    chk = Check("ecg_feed_present", "ecg", "", "no ECG rows tonight: the ECG export may be missing",
+                "pandas", critical_above_pct=limit)
+    out.append(_check_row(chk, 1, int(n_ecg == 0), detail=f"{n_ecg} ECG rows tonight"))
+    if n_ecg and "lab" in present:
+        n_lab = len(present["lab"])
+        lab_limit = limit if n_ecg >= site["lab_feed_min_ecgs"] else None
+        chk = Check("lab_feed_present", "lab", "", "ECGs tonight but no lab rows for their patients: the lab "
+                    "feed may be missing", "pandas", critical_above_pct=lab_limit)
+        out.append(_check_row(chk, 1, int(n_lab == 0), detail=f"{n_lab} lab rows for the patients of {n_ecg} ECGs"))
+    return out
+
+
 def _critical_message(r) -> str:
+    if r.expectation == "pandas" and not r.column:
+        return f"table {r.table}: check {r.check} failed: {r.reason} ({r.detail})"
     return (f"table {r.table}: check {r.check} ({r.expectation} on {r.column}) failed for "
             f"{r.rows_failed} of {r.rows_checked} rows ({r.pct_failed:.1f} %), "
             f"above the {r.critical_above_pct:g} % critical limit")

@@ -494,3 +494,61 @@ def test_ge_results_themselves_hold_no_values_and_summary_format_would_have():
     assert raw.results[0].result.get("partial_unexpected_list") is None
     summary = str(run_suite(ge_context(), "ecg", ecg, checks, result_format="SUMMARY"))
     assert SECRET_ECG in summary and "712.345" in summary
+
+
+# ---------------------------------------------------------------- missing feeds (stop by default)
+def _feed_lake(tmp_path, n_ecg: int, lab_day: str):
+    from tests.lake_builders import ecg_row, lab_row, patient_row, write_lake
+
+    pids = [f"P{i}" for i in range(n_ecg)]
+    return write_lake(tmp_path / "lake",
+                      ecg=[ecg_row(f"E{i}", p, acquired_at=f"2026-11-29T{8 + i % 12:02d}:00:00Z") for i, p in enumerate(pids)]
+                      or [ecg_row("E0", "P0", acquired_at="2026-11-20T10:00:00Z")],
+                      labs=[lab_row(f"R{i}", p, collected_at=f"{lab_day}T07:00:00Z", value=6.8) for i, p in enumerate(pids or ["P0"])],
+                      patients=[patient_row(p) for p in (pids or ["P0"])])
+
+
+def _run(tmp_path, lake, config_text: str = ""):
+    from pipeline.cli import main
+
+    config = tmp_path / "site.toml"
+    config.write_text(config_text, encoding="utf-8")
+    return main(["run", "--lake", str(lake), "--out", str(tmp_path / "out"), "--config", str(config),
+                 "--start", "2026-11-29", "--end", "2026-11-30"])
+
+
+def test_ecgs_without_any_lab_row_stop_the_run_by_default(tmp_path, capsys):
+    # 25 ECGs of patients whose potassium is on another day only: the lab feed for tonight is
+    # missing. Without the gate the hyperkalaemia findings would silently fall back to "no
+    # potassium measured" with exit 0.
+    lake = _feed_lake(tmp_path, 25, lab_day="2026-11-01")
+    assert _run(tmp_path, lake) == 2
+    err = capsys.readouterr().err
+    assert "lab_feed_present" in err and "P1" not in err
+    assert not (tmp_path / "out" / "worklist.parquet").exists()
+
+
+def test_a_site_may_lower_a_missing_feed_to_a_warning_that_the_summary_records(tmp_path):
+    import json
+
+    lake = _feed_lake(tmp_path, 25, lab_day="2026-11-01")
+    assert _run(tmp_path, lake, '[quality]\nmissing_feed = "warning"\n') == 0
+    report = json.loads((tmp_path / "out" / "quality.json").read_text())
+    checks = {c["check"]: c for c in report["checks"]}
+    assert checks["lab_feed_present"]["passed"] is False and checks["lab_feed_present"]["severity"] == "warning"
+
+
+def test_a_small_night_without_labs_is_a_warning_not_a_stop(tmp_path):
+    lake = _feed_lake(tmp_path, 3, lab_day="2026-11-01")
+    assert _run(tmp_path, lake) == 0
+
+
+def test_a_night_with_no_ecg_rows_stops_the_run(tmp_path, capsys):
+    lake = _feed_lake(tmp_path, 0, lab_day="2026-11-20")
+    assert _run(tmp_path, lake) == 2
+    assert "ecg_feed_present" in capsys.readouterr().err
+
+
+def test_with_labs_tonight_the_feed_checks_pass(tmp_path):
+    lake = _feed_lake(tmp_path, 25, lab_day="2026-11-29")
+    assert _run(tmp_path, lake) == 0
