@@ -82,6 +82,7 @@ def stage_load(lake, out, start, end, config=None, settings: Settings | None = N
     patient = read_table(lake, c.PATIENT, settings, scope="window", keep=keep)
     medication = read_table(lake, c.MEDICATION, settings, scope="window", keep=keep,
                             window=(lo - pd.Timedelta(hours=w["medication_h"]), hi))
+    night, history = _reject_cross_partition_ids(night, history)
     ecg_history = pd.concat([history.clean, night.clean], ignore_index=True)
 
     loaded = {"ecg": night, "ecg_history": history, "lab": lab, "patient": patient, "medication": medication}
@@ -110,6 +111,27 @@ def stage_load(lake, out, start, end, config=None, settings: Settings | None = N
                      "files": t.files} for name, t in loaded.items()}
     return {"interval": [lo.isoformat(), hi.isoformat()], "stage_dir": str(d), "tables": counts,
             "rejects_by_reason": _reasons(rejects)}
+
+
+def _reject_cross_partition_ids(night, history):
+    """An ECG id tonight that is also in an earlier partition is a duplicate_id (the contract's
+    key is unique across the lake): every copy is rejected with its reason, so no ECG becomes its
+    own prior and no row leaves uncounted."""
+    from dataclasses import replace
+
+    dup = set(night.clean["ecg_id"]) & set(history.clean["ecg_id"])
+    if not dup:
+        return night, history
+
+    def split(loaded, scope):
+        bad = loaded.clean["ecg_id"].isin(dup).to_numpy()
+        rejects = pd.DataFrame({"table": c.ECG.name, "scope": scope, "row_key": loaded.clean.loc[bad, "ecg_id"],
+                                "file": "", "column": "ecg_id", "reason": c.DUPLICATE_ID,
+                                "detail": "same ecg_id in another date partition"}, columns=c.REJECT_COLUMNS)
+        return replace(loaded, clean=loaded.clean[~bad].reset_index(drop=True),
+                       rejects=pd.concat([loaded.rejects, rejects.astype("str")], ignore_index=True))
+
+    return split(night, "night"), split(history, "window")
 
 
 def _load_prior_leads(lake, d: Path, aligned: pd.DataFrame, settings: Settings) -> int:

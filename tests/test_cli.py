@@ -159,3 +159,26 @@ def test_a_potassium_the_contract_rejected_is_named_with_its_reason_not_as_none_
     items = pd.read_parquet(out / "worklist.parquet")
     summary = items.loc[items["screen"] == "hyperkalemia", "summary"].iloc[0]
     assert "Potassium result rejected (unknown_unit)" in summary and "66" not in summary
+
+
+def test_an_ecg_id_in_two_partitions_is_a_duplicate_not_its_own_prior(tmp_path):
+    # The contract's key is unique across the lake: the same ecg_id on 2026-11-20 and tonight is a
+    # duplicate_id (every copy rejected with its reason), never the ECG's own prior.
+    import pandas as pd
+
+    lake = write_lake(tmp_path / "lake",
+                      ecg=[ecg_row("E1", "P1", acquired_at="2026-11-20T10:00:00Z"),
+                           ecg_row("E1", "P1", acquired_at="2026-11-29T10:00:00Z", qt_ms=560.0),
+                           ecg_row("E2", "P1", acquired_at="2026-11-29T12:00:00Z")],
+                      labs=[lab_row("R1", "P1")], patients=[patient_row("P1")])
+    out = tmp_path / "out"
+    assert main(["run", "--lake", str(lake), "--out", str(out), *ARGS]) == 0
+    rejects = pd.read_parquet(out / "rejects.parquet")
+    dup = rejects[rejects["reason"] == "duplicate_id"]
+    assert sorted(dup["scope"]) == ["night", "window"] and set(dup["row_key"]) == {"E1"}
+    aligned = pd.read_parquet(out / "aligned.parquet")
+    assert aligned["ecg_id"].tolist() == ["E2"]
+    assert (aligned["prior_ecg_id"] != aligned["ecg_id"]).all() and aligned["prior_ecg_id"].isna().all()
+    summary = __import__("json").loads((out / "run_summary.json").read_text())
+    ecg = summary["tables"]["ecg"]
+    assert ecg["rows_in"] == ecg["accepted"] + ecg["rejected"]
