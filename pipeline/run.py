@@ -357,6 +357,9 @@ def run_interval(lake, out, start, end, config=None, db=None, quality: bool = Tr
     seconds per stage only) and writes it to OUT/run_summary.json beside the worklist, the
     aligned table and the rejects. An interval longer than `chunk_days` runs chunk by chunk,
     in time order, so that the worklist folds episodes exactly as nightly runs would."""
+    from pipeline.runlock import run_lock
+    from pipeline.store import sqlite_url
+
     settings = load_settings(config)
     lo, hi = interval(start, end)
     Path(out).mkdir(parents=True, exist_ok=True)
@@ -365,8 +368,9 @@ def run_interval(lake, out, start, end, config=None, db=None, quality: bool = Tr
     while bounds[-1] + step < hi:
         bounds.append(bounds[-1] + step)
     bounds.append(hi)
-    parts = [_run_chunk(lake, out, a, b, settings, db, quality) for a, b in zip(bounds[:-1], bounds[1:])]
-    return stage_finish(out, lo, hi, _add_up(parts) | {"chunks": len(parts)}, settings, bounds)
+    with run_lock(out, db or sqlite_url(out)):    # one run at a time per OUT and store
+        parts = [_run_chunk(lake, out, a, b, settings, db, quality) for a, b in zip(bounds[:-1], bounds[1:])]
+        return stage_finish(out, lo, hi, _add_up(parts) | {"chunks": len(parts)}, settings, bounds)
 
 
 def stage_finish(out, start, end, summary: dict, settings: Settings | None = None,
