@@ -31,8 +31,9 @@ UNKNOWN_UNIT = "unknown_unit"
 IMPOSSIBLE_VALUE = "impossible_value"
 DUPLICATE_ID = "duplicate_id"
 UNKNOWN_LEAD = "unknown_lead"
+INVALID_TEXT = "invalid_text"          # not UTF-8, or a NUL byte (PostgreSQL refuses it in text)
 REJECT_REASONS = (WRONG_TYPE, MISSING_VALUE, UNPARSEABLE_TIMESTAMP, NAIVE_TIMESTAMP, UNKNOWN_UNIT,
-                  IMPOSSIBLE_VALUE, DUPLICATE_ID, UNKNOWN_LEAD)
+                  IMPOSSIBLE_VALUE, DUPLICATE_ID, UNKNOWN_LEAD, INVALID_TEXT)
 REJECT_COLUMNS = ["table", "scope", "row_key", "file", "column", "reason", "detail"]
 
 # Column kinds.

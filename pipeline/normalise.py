@@ -173,7 +173,7 @@ def _parse(s: pd.Series, col: c.Column, settings: Settings, problems: _Problems)
     s = s.reset_index(drop=True)
     present = s.notna().to_numpy()
     if col.kind == c.STRING:
-        out = s.astype("str")
+        out = _text(s, col, problems)
         present = out.notna().to_numpy() & (out.str.strip() != "").fillna(False).to_numpy()
         out = out.where(present)
     elif col.kind == c.FLOAT:
@@ -187,6 +187,21 @@ def _parse(s: pd.Series, col: c.Column, settings: Settings, problems: _Problems)
     if not col.nullable:
         problems.flag(~present, c.MISSING_VALUE, col.name, "required value is empty")
     return out
+
+
+def _text(s: pd.Series, col: c.Column, problems: _Problems) -> pd.Series:
+    """A text column as str. Bytes (a binary Parquet column) are decoded as UTF-8; a value that is
+    not valid UTF-8, or holds a NUL byte, is rejected per row (invalid_text), never passed on to
+    break a later stage or the PostgreSQL store. Vectorised over the column."""
+    if s.dtype == object and len(s) and s.map(type).eq(bytes).any():
+        decoded = s.str.decode("utf-8", errors="replace")
+        bad = decoded.str.contains("\ufffd", regex=False).fillna(False).to_numpy()
+        problems.flag(bad, c.INVALID_TEXT, col.name, "text is not valid UTF-8")
+        s = decoded.mask(bad)
+    out = s.astype("str")
+    nul = out.str.contains("\x00", regex=False).fillna(False).to_numpy()
+    problems.flag(nul, c.INVALID_TEXT, col.name, "text holds a NUL byte")
+    return out.mask(nul)
 
 
 def _parse_float(s, col, problems, present):

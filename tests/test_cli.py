@@ -182,3 +182,15 @@ def test_an_ecg_id_in_two_partitions_is_a_duplicate_not_its_own_prior(tmp_path):
     summary = __import__("json").loads((out / "run_summary.json").read_text())
     ecg = summary["tables"]["ecg"]
     assert ecg["rows_in"] == ecg["accepted"] + ecg["rejected"]
+
+
+def test_a_binary_text_column_with_bad_utf8_is_rejected_per_row_not_a_crash(tmp_path, capsys):
+    import pandas as pd
+
+    ecg = [ecg_row("E1", "P1", location=b"ED"), ecg_row("E2", "P2", location=b"ward \xff")]   # a binary column
+    lake = write_lake(tmp_path / "lake", ecg=ecg, labs=[lab_row("R1", "P1"), lab_row("R2", "P2")],
+                      patients=[patient_row("P1"), patient_row("P2")])
+    out = tmp_path / "out"
+    assert main(["run", "--lake", str(lake), "--out", str(out), *ARGS]) == 0
+    rejects = pd.read_parquet(out / "rejects.parquet")
+    assert rejects[["row_key", "reason", "column"]].values.tolist() == [["E2", "invalid_text", "location"]]

@@ -153,3 +153,23 @@ def test_reject_details_never_copy_row_values():
     raw = pd.DataFrame([ecg_row("secret-id-123", qrs_ms=987.0)])
     got = normalise_table(raw, c.ECG, DEFAULT)
     assert "987" not in got.rejects["detail"].iloc[0]
+
+
+# -- text -------------------------------------------------------------------------------------
+
+def test_a_nul_byte_in_any_text_column_is_rejected_per_row_with_its_reason():
+    # PostgreSQL refuses NUL in text: one bad row must not block the night (it is rejected alone).
+    rows = pd.DataFrame([ecg_row("E1", "P1"), ecg_row("E2", "P\x002"), ecg_row("E3", "P3", location="ward\x00 7")])
+    got = normalise_table(rows, c.ECG, DEFAULT)
+    assert got.clean["ecg_id"].tolist() == ["E1"]
+    assert got.rejects[["row_key", "reason", "column"]].values.tolist() == [
+        ["E2", c.INVALID_TEXT, "patient_id"], ["E3", c.INVALID_TEXT, "location"]]
+    assert "P\x002" not in got.rejects.to_string()      # the value itself is never copied
+
+
+def test_text_that_is_not_utf8_is_rejected_per_row_and_valid_bytes_are_decoded():
+    rows = pd.DataFrame([ecg_row("E1", "P1"), ecg_row("E2", "P2")])
+    rows["patient_id"] = pd.Series([b"P1", b"P\xff2"], dtype=object)
+    got = normalise_table(rows, c.ECG, DEFAULT)
+    assert got.clean["patient_id"].tolist() == ["P1"]
+    assert got.rejects[["row_key", "reason", "column"]].values.tolist() == [["E2", c.INVALID_TEXT, "patient_id"]]
