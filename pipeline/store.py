@@ -66,6 +66,12 @@ REJECT_UNKNOWN_ITEM = "unknown_item"
 REJECT_UNPARSEABLE_TIMESTAMP = "unparseable_timestamp"
 REJECT_NAIVE_TIMESTAMP = "naive_timestamp"
 REJECT_BEFORE_FLAGGED = "reviewed_before_flagged"
+REJECT_TEXT_TOO_LONG = "text_too_long"
+REJECT_INVALID_TEXT = "invalid_text"
+# Documented limits of a review's free text (docs/prioritisation.md): the role fits its column;
+# a note is a short reason, not a clinical letter (local choice).
+ROLE_MAX_CHARS = 128
+NOTE_MAX_CHARS = 2000
 REVIEW_CSV_REQUIRED = ("item_id", "reviewed_at", "reviewer_role", "outcome")
 REVIEW_CSV_OPTIONAL = ("note",)
 
@@ -471,6 +477,11 @@ def _check_reviews(conn: Connection, df: pd.DataFrame) -> pd.Series:
                          REJECT_BEFORE_FLAGGED)
     reason = reason.mask(~df["item_id"].isin(flagged["item_id"]), REJECT_UNKNOWN_ITEM)
     reason = reason.mask(~df["outcome"].isin(OUTCOMES), REJECT_UNKNOWN_OUTCOME)
+    role = df["reviewer_role"].astype("str").fillna("")
+    note = df["note"].astype("str").fillna("") if "note" in df else pd.Series("", index=df.index, dtype="str")
+    too_long = (role.str.len() > ROLE_MAX_CHARS) | (note.str.len() > NOTE_MAX_CHARS)
+    nul = role.str.contains("\x00", regex=False) | note.str.contains("\x00", regex=False)
+    reason = reason.mask(too_long.to_numpy(), REJECT_TEXT_TOO_LONG).mask(nul.to_numpy(), REJECT_INVALID_TEXT)
     return reason
 
 
@@ -566,7 +577,8 @@ def import_reviews_csv(engine: Engine, path, timezone: str | None = None) -> dic
     with engine.begin() as conn:
         later = _check_reviews(conn, df)
         col_of = {REJECT_UNKNOWN_ITEM: "item_id", REJECT_UNKNOWN_OUTCOME: "outcome",
-                  REJECT_BEFORE_FLAGGED: "reviewed_at"}
+                  REJECT_BEFORE_FLAGGED: "reviewed_at", REJECT_TEXT_TOO_LONG: "reviewer_role or note",
+                  REJECT_INVALID_TEXT: "reviewer_role or note"}
         for why, col in col_of.items():
             reject(later.eq(why), col, why)
         good = df[reason.isna()]

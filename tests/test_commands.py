@@ -158,3 +158,16 @@ def test_export_writes_csv_to_standard_output(out, capsys):
 def test_store_commands_need_db_or_out(capsys):
     code, _, err = run(capsys, "yield")
     assert code == 2 and "--db" in err
+
+
+@pytest.mark.parametrize("extra, reason", [
+    (["--role", "r" * 129], "text_too_long"),        # the role column holds 128 characters
+    (["--role", "registrar", "--note", "n" * 2001], "text_too_long"),   # notes up to 2000 characters
+    (["--role", "registrar", "--note", "bad\x00note"], "invalid_text"),
+])
+def test_a_review_with_text_over_its_documented_length_or_a_nul_byte_exits_2(out, capsys, extra, reason):
+    top = read_items(open_store(sqlite_url(out))).iloc[0]["item_id"]
+    code, _, err = run(capsys, "review", top, "--outcome", "finding_real", *extra, "--at", "2026-03-02T04:00:00Z",
+                       "--out", out)
+    assert code == 2 and reason in err
+    assert read_items(open_store(sqlite_url(out))).set_index("item_id").loc[top, "status"] != "closed"
