@@ -182,7 +182,9 @@ def open_store(url: str) -> Engine:
     read: one look at cardiosieve_schema."""
     if url.startswith("sqlite:///") and url != "sqlite:///:memory:":
         Path(url[len("sqlite:///"):]).parent.mkdir(parents=True, exist_ok=True)
-    engine = create_engine(url)
+    # SQLite: a writer waits up to a minute for another's write lock (a nightly upsert) rather
+    # than failing at once.
+    engine = create_engine(url, connect_args={"timeout": 60}) if url.startswith("sqlite") else create_engine(url)
     try:
         with engine.connect() as conn:
             current = _stored_version(conn) == SCHEMA_VERSION
@@ -217,15 +219,15 @@ def _stored_version(conn: Connection) -> int | None:
 
 
 @contextmanager
-def _schema_transaction(engine: Engine):
-    """One transaction for a schema change, DDL included, holding the store's write lock from
-    before the version is read.
+def _write_transaction(engine: Engine, pg_lock: int | None = None):
+    """One write transaction that holds the store's write lock from its first read, so that a
+    read-modify-write (the nightly upsert, a review) can never overwrite a concurrent one.
 
-    SQLite: the sqlite3 module begins a transaction only before INSERT/UPDATE/DELETE, so CREATE,
-    DROP and ALTER would each commit on their own. The connection is put in driver autocommit and
-    the transaction is driven by hand; BEGIN IMMEDIATE takes the write lock at once (SQLite DDL
-    is transactional). PostgreSQL: DDL is transactional; an advisory lock, released at commit,
-    makes a second process wait and then find the store current."""
+    SQLite: the sqlite3 module begins a transaction only before INSERT/UPDATE/DELETE (and CREATE,
+    DROP and ALTER would each commit on their own), so the connection is put in driver autocommit
+    and BEGIN IMMEDIATE takes the write lock at once; a second writer waits (busy timeout).
+    PostgreSQL: an ordinary transaction; readers that modify lock their rows (FOR UPDATE in
+    `_read`), and `pg_lock` adds an advisory lock released at commit."""
     if engine.dialect.name == "sqlite":
         with engine.connect().execution_options(isolation_level="AUTOCOMMIT") as conn:
             conn.exec_driver_sql("BEGIN IMMEDIATE")
@@ -238,9 +240,15 @@ def _schema_transaction(engine: Engine):
             conn.exec_driver_sql("COMMIT")
     else:
         with engine.begin() as conn:
-            if engine.dialect.name == "postgresql":
-                conn.execute(select(func.pg_advisory_xact_lock(_PG_SCHEMA_LOCK)))
+            if engine.dialect.name == "postgresql" and pg_lock is not None:
+                conn.execute(select(func.pg_advisory_xact_lock(pg_lock)))
             yield conn
+
+
+def _schema_transaction(engine: Engine):
+    """One transaction for a schema change, DDL included, holding the store's write lock from
+    before the version is read (a second process waits, then finds the store current)."""
+    return _write_transaction(engine, pg_lock=_PG_SCHEMA_LOCK)
 
 
 def _upgrade(conn: Connection) -> None:
@@ -330,10 +338,12 @@ def _frame(rows, columns) -> pd.DataFrame:
     return pd.DataFrame([tuple(r) for r in rows], columns=columns)
 
 
-def _read(conn: Connection, item_ids=None, patient_ids=None, screens=None) -> pd.DataFrame:
+def _read(conn: Connection, item_ids=None, patient_ids=None, screens=None, for_update: bool = False) -> pd.DataFrame:
     t = worklist_item
     cols = [t.c[c] for c in ITEM_COLUMNS]
     base = select(*cols)
+    if for_update:                 # PostgreSQL row locks; SQLite holds the whole store already
+        base = base.with_for_update()
     if screens is not None:
         base = base.where(t.c.screen.in_(list(screens)))
     filters = [(t.c.item_id, item_ids), (t.c.patient_id, patient_ids)]
@@ -399,8 +409,8 @@ def upsert_items(engine: Engine, items: pd.DataFrame) -> dict:
     if incoming["item_id"].duplicated().any():
         raise ValueError("worklist items: item_id is not unique within the batch")
     t = worklist_item
-    with engine.begin() as conn:
-        stored = _read(conn, item_ids=incoming["item_id"])
+    with _write_transaction(engine) as conn:
+        stored = _read(conn, item_ids=incoming["item_id"], for_update=True)   # a review waits, or was seen
         incoming = apply_reopen_rule(incoming, stored)
         known = incoming["item_id"].isin(stored["item_id"])
         old = stored.set_index("item_id").reindex(incoming["item_id"])
@@ -448,7 +458,8 @@ def _apply_reviews(conn: Connection, new: pd.DataFrame, recorded_via: str) -> in
         ["item_id", "reviewed_at", "outcome", "review_id"])
     latest = latest.sort_values(["item_id", "reviewed_at", "review_id"]).drop_duplicates("item_id", keep="last")
     items = _frame(conn.execute(select(t.c.item_id, t.c.status, t.c.last_updated_at)
-                                .where(t.c.item_id.in_(ids))).all(), ["item_id", "status", "last_updated_at"])
+                                .where(t.c.item_id.in_(ids)).with_for_update()).all(),
+                   ["item_id", "status", "last_updated_at"])
     m = latest.merge(items, on="item_id")
     close = ~(m["status"].eq(STATUS_REOPENED) & (m["reviewed_at"] < m["last_updated_at"]))
     m = m[close]
@@ -500,7 +511,7 @@ def record_review(engine: Engine, item_id: str, outcome: str, role: str, note: s
     one = pd.DataFrame({"item_id": [str(item_id)], "reviewed_at": [when.tz_convert("UTC").as_unit("us")],
                         "reviewer_role": [str(role).strip()], "outcome": [outcome],
                         "note": [note if note else None]})
-    with engine.begin() as conn:
+    with _write_transaction(engine) as conn:
         reason = _check_reviews(conn, one).iloc[0]
         if isinstance(reason, str):
             raise ValueError(f"review rejected: {reason}")
@@ -574,7 +585,7 @@ def import_reviews_csv(engine: Engine, path, timezone: str | None = None) -> dic
         reject(naive & naive_parsed.notna(), "reviewed_at", REJECT_NAIVE_TIMESTAMP)
     reject(df["reviewed_at"].isna(), "reviewed_at", REJECT_UNPARSEABLE_TIMESTAMP)
 
-    with engine.begin() as conn:
+    with _write_transaction(engine) as conn:
         later = _check_reviews(conn, df)
         col_of = {REJECT_UNKNOWN_ITEM: "item_id", REJECT_UNKNOWN_OUTCOME: "outcome",
                   REJECT_BEFORE_FLAGGED: "reviewed_at", REJECT_TEXT_TOO_LONG: "reviewer_role or note",

@@ -585,3 +585,45 @@ def test_a_store_from_newer_code_is_refused(empty_url):
     engine.dispose()
     with pytest.raises(StoreSchemaError, match="newer"):
         open_store(empty_url)
+
+
+def test_a_review_during_the_nightly_upsert_is_never_overwritten(engine, monkeypatch):
+    # A real race: the night's upsert has read the stored item (open) and is about to write it
+    # back when a reviewer closes it. The upsert holds the store's write lock from its read
+    # (SQLite BEGIN IMMEDIATE, PostgreSQL FOR UPDATE), so the review waits and lands on top:
+    # the item ends closed and the review is kept, whichever thread the scheduler favours.
+    import threading
+    import time
+
+    night(engine, FIRST[:1])
+    iid = read_items(engine).iloc[0]["item_id"]
+    f = findings(FIRST[0])
+    items = build_items(f, None, read_items(engine, patient_ids=["p1"]), "run-2", NIGHT2)   # read: open
+
+    read_done = threading.Event()
+    real_rule = store.apply_reopen_rule
+
+    def slow_rule(incoming, stored):
+        read_done.set()
+        time.sleep(1.0)            # the window in which a review used to be lost
+        return real_rule(incoming, stored)
+
+    monkeypatch.setattr(store, "apply_reopen_rule", slow_rule)
+    errors = []
+
+    def review():
+        read_done.wait(10)
+        try:
+            record_review(engine, iid, "finding_real", "registrar", None, pd.Timestamp("2026-03-02 08:00", tz="UTC"))
+        except Exception as exc:          # noqa: BLE001 (reported below)
+            errors.append(exc)
+
+    reviewer = threading.Thread(target=review)
+    reviewer.start()
+    upsert_items(engine, items.assign(summary="night 2 text"))
+    reviewer.join(30)
+    assert errors == []
+    row = read_items(engine).set_index("item_id").loc[iid]
+    assert row["status"] == STATUS_CLOSED and row["status_reason"] == "reviewed: finding_real"
+    with engine.connect() as conn:
+        assert conn.execute(text("SELECT count(*) FROM review")).scalar() == 1
