@@ -278,7 +278,8 @@ def row_count_check(table: str) -> Check:
 # Running
 
 def run_quality(tables: Mapping[str, pd.DataFrame], run_end, trailing_counts: Mapping[str, list] | None = None,
-                settings=None, tonight_counts: Mapping[str, int] | None = None) -> QualityResult:
+                settings=None, tonight_counts: Mapping[str, int] | None = None,
+                lab_volume: tuple[list, float] | None = None) -> QualityResult:
     """Check the night's contract tables; return clean tables, rejects and the checks table.
 
     `tables`: contract tables after loading (ecg, ecg_lead, lab, patient; medication optional;
@@ -286,8 +287,9 @@ def run_quality(tables: Mapping[str, pd.DataFrame], run_end, trailing_counts: Ma
     "now" of the future checks (the wall clock is never read). `trailing_counts`: table ->
     row counts of the previous nights, oldest first; `tonight_counts`: table -> tonight's count
     counted the same way, when the table handed over is not one night's rows (a lab table
-    loaded over its look-back window); default: the table's length. Raises nothing on bad data:
-    call `enforce`.
+    loaded over its look-back window); default: the table's length. `lab_volume`: (lab rows of
+    the whole lab partitions on the previous nights, tonight's): a drop far under the band is a
+    missing feed. Raises nothing on bad data: call `enforce`.
     """
     run_end = pd.Timestamp(run_end)
     if run_end.tzinfo is None:
@@ -328,7 +330,7 @@ def run_quality(tables: Mapping[str, pd.DataFrame], run_end, trailing_counts: Ma
             n = (tonight_counts or {}).get(table, len(present[table]))
             rows.append(_row_count(row_count_check(table), int(n), counts, qs))
 
-    rows.extend(_feed_checks(present, tonight_counts, qs))
+    rows.extend(_feed_checks(present, tonight_counts, qs, lab_volume))
 
     checks = pd.DataFrame(rows, columns=CHECK_COLUMNS).astype({"passed": "boolean"})
     bad = checks[checks["severity"].eq(CRITICAL) & checks["passed"].eq(False)]
@@ -496,7 +498,7 @@ def _row_count(chk: Check, n: int, counts, qs: QualitySettings) -> dict:
     return _check_row(chk, n, 0, passed=bool(low <= n <= high), detail=detail)
 
 
-def _feed_checks(present, tonight_counts, qs: QualitySettings) -> list[dict]:
+def _feed_checks(present, tonight_counts, qs: QualitySettings, lab_volume=None) -> list[dict]:
     """Is a feed missing? No ECG rows tonight, or ECGs but no lab rows for their patients: a
     critical failure by default (site config [quality] missing_feed), since the screens would
     otherwise rank hyperkalaemia without any potassium and exit 0. Counts only, no values."""
@@ -515,6 +517,18 @@ def _feed_checks(present, tonight_counts, qs: QualitySettings) -> list[dict]:
         chk = Check("lab_feed_present", "lab", "", "ECGs tonight but no lab rows for their patients: the lab "
                     "feed may be missing", "pandas", critical_above_pct=lab_limit)
         out.append(_check_row(chk, 1, int(n_lab == 0), detail=f"{n_lab} lab rows for the patients of {n_ecg} ECGs"))
+    if lab_volume is not None:
+        counts, n = lab_volume
+        band = row_count_band(counts, qs)
+        chk = Check("lab_feed_volume", "lab", "", "the lab partitions hold far fewer rows than on recent nights: "
+                    "the lab feed may be incomplete", "pandas", critical_above_pct=limit)
+        if band is None:
+            out.append(_check_row(chk, 1, 0, passed=pd.NA,
+                                  detail=f"not evaluable: fewer than {qs.row_count_min_nights} previous nights"))
+        else:
+            low = band[0]
+            out.append(_check_row(chk, 1, int(n < low),
+                                  detail=f"{n:.0f} lab rows tonight; at least {low:.0f} expected from recent nights"))
     return out
 
 

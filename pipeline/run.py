@@ -224,6 +224,27 @@ def _gate_lab_rejects(d: Path) -> pd.DataFrame | None:
     return pd.concat(parts, ignore_index=True) if parts else None
 
 
+def lab_volume(lake, lo: pd.Timestamp, hi: pd.Timestamp, nights: int = 28) -> tuple[list[float], float]:
+    """Lab rows per night in the lab partitions (whole partitions, every patient: a like-for-like
+    count of the feed itself) over the nights before `lo`, scaled to the run's length, and the
+    partitions of [lo, hi). Parquet footers only, no data pages."""
+    import pyarrow.parquet as pq
+    from pipeline.load import table_files
+
+    def per_day(first, last):
+        days: dict[str, int] = {}
+        for f in table_files(lake, c.LAB, first, last):
+            day = next((p[5:] for p in f.parts if p.startswith("date=")), None)
+            if day is not None:
+                days[day] = days.get(day, 0) + pq.ParquetFile(f).metadata.num_rows
+        return days
+
+    scale = (hi - lo) / pd.Timedelta(days=1)
+    before = per_day((lo - pd.Timedelta(days=nights)).strftime("%Y-%m-%d"), (lo - pd.Timedelta(days=1)).strftime("%Y-%m-%d"))
+    tonight = per_day(lo.strftime("%Y-%m-%d"), (hi - pd.Timedelta(microseconds=1)).strftime("%Y-%m-%d"))
+    return [before[d] * scale for d in sorted(before)], float(sum(tonight.values()))
+
+
 def trailing_counts(lake, lo: pd.Timestamp, hi: pd.Timestamp, nights: int = 28) -> dict:
     """ECG rows per night over the nights before `lo`, read from the Parquet footers of the
     date partitions only (no data pages), scaled to the run's length in days: the quality
@@ -261,7 +282,7 @@ def stage_quality(lake, out, start, end, config=None, settings: Settings | None 
     load_rejects = pd.read_parquet(d / "rejects.parquet")
     tonight = {"ecg": len(tables["ecg"]) + int(((load_rejects["table"] == "ecg") & (load_rejects["scope"] == "night")).sum())}
     result = run_quality(tables, hi, trailing_counts=trailing_counts(lake, lo, hi), settings=settings,
-                         tonight_counts=tonight)
+                         tonight_counts=tonight, lab_volume=lab_volume(lake, lo, hi))
     paths = write_report(result, out)
     if result.passed:
         for n, df in result.clean.items():

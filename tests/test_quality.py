@@ -552,3 +552,26 @@ def test_a_night_with_no_ecg_rows_stops_the_run(tmp_path, capsys):
 def test_with_labs_tonight_the_feed_checks_pass(tmp_path):
     lake = _feed_lake(tmp_path, 25, lab_day="2026-11-29")
     assert _run(tmp_path, lake) == 0
+
+
+def _volume_lake(tmp_path, tonight_labs: int):
+    from tests.lake_builders import ecg_row, lab_row, patient_row, write_lake
+
+    pids = [f"P{i}" for i in range(25)]
+    earlier = [lab_row(f"H{d}-{i}", f"Q{i}", collected_at=f"2026-11-{d:02d}T09:00:00Z")
+               for d in range(15, 29) for i in range(200)]          # 200 lab rows a night before
+    tonight = [lab_row(f"R{i}", pids[i % 25], collected_at="2026-11-29T07:00:00Z") for i in range(tonight_labs)]
+    return write_lake(tmp_path / "lake",
+                      ecg=[ecg_row(f"E{i}", p, acquired_at=f"2026-11-29T{8 + i % 12:02d}:00:00Z") for i, p in enumerate(pids)],
+                      labs=earlier + tonight, patients=[patient_row(p) for p in pids])
+
+
+def test_a_lab_feed_far_under_its_recent_volume_stops_the_run(tmp_path, capsys):
+    # 200 lab rows on each recent night, 25 tonight: the feed is likely incomplete, and the
+    # hyperkalaemia screen would rank many ECGs without a potassium (lab_feed_volume).
+    assert _run(tmp_path, _volume_lake(tmp_path, 25)) == 2
+    assert "lab_feed_volume" in capsys.readouterr().err
+
+
+def test_a_lab_feed_at_its_usual_volume_passes(tmp_path):
+    assert _run(tmp_path, _volume_lake(tmp_path, 190)) == 0
