@@ -224,48 +224,42 @@ def _gate_lab_rejects(d: Path) -> pd.DataFrame | None:
     return pd.concat(parts, ignore_index=True) if parts else None
 
 
-def lab_volume(lake, lo: pd.Timestamp, hi: pd.Timestamp, nights: int = 28) -> tuple[list[float], float]:
-    """Lab rows per night in the lab partitions (whole partitions, every patient: a like-for-like
-    count of the feed itself) over the nights before `lo`, scaled to the run's length, and the
-    partitions of [lo, hi). Parquet footers only, no data pages."""
+def _rows_per_day(lake, table: c.Table, first: str, last: str) -> dict[str, int]:
+    """Rows per date partition of `table` over the days [first, last], from the Parquet footers
+    only (no data pages)."""
     import pyarrow.parquet as pq
     from pipeline.load import table_files
 
-    def per_day(first, last):
-        days: dict[str, int] = {}
-        for f in table_files(lake, c.LAB, first, last):
-            day = next((p[5:] for p in f.parts if p.startswith("date=")), None)
-            if day is not None:
-                days[day] = days.get(day, 0) + pq.ParquetFile(f).metadata.num_rows
-        return days
+    days: dict[str, int] = {}
+    for f in table_files(lake, table, first, last):
+        day = next((p[5:] for p in f.parts if p.startswith("date=")), None)
+        if day is not None:
+            days[day] = days.get(day, 0) + pq.ParquetFile(f).metadata.num_rows
+    return days
 
+
+def _previous_nights(lo: pd.Timestamp, nights: int) -> tuple[str, str]:
+    return (lo - pd.Timedelta(days=nights)).strftime("%Y-%m-%d"), (lo - pd.Timedelta(days=1)).strftime("%Y-%m-%d")
+
+
+def lab_volume(lake, lo: pd.Timestamp, hi: pd.Timestamp, nights: int = 28) -> tuple[list[float], float]:
+    """Lab rows per night in the lab partitions (whole partitions, every patient: a like-for-like
+    count of the feed itself) over the nights before `lo`, scaled to the run's length, and the
+    partitions of [lo, hi)."""
     scale = (hi - lo) / pd.Timedelta(days=1)
-    before = per_day((lo - pd.Timedelta(days=nights)).strftime("%Y-%m-%d"), (lo - pd.Timedelta(days=1)).strftime("%Y-%m-%d"))
-    tonight = per_day(lo.strftime("%Y-%m-%d"), (hi - pd.Timedelta(microseconds=1)).strftime("%Y-%m-%d"))
+    before = _rows_per_day(lake, c.LAB, *_previous_nights(lo, nights))
+    tonight = _rows_per_day(lake, c.LAB, lo.strftime("%Y-%m-%d"), (hi - pd.Timedelta(microseconds=1)).strftime("%Y-%m-%d"))
     return [before[d] * scale for d in sorted(before)], float(sum(tonight.values()))
 
 
 def trailing_counts(lake, lo: pd.Timestamp, hi: pd.Timestamp, nights: int = 28) -> dict:
-    """ECG rows per night over the nights before `lo`, read from the Parquet footers of the
-    date partitions only (no data pages), scaled to the run's length in days: the quality
-    gate's row-count band. (Only the ECG table: tonight's lab rows are read for the night's
-    patients alone, so a lab partition's total is no like-for-like comparison.)"""
-    import pyarrow.parquet as pq
-    from pipeline.load import table_files
-
+    """ECG rows per night over the nights before `lo`, from the partitions' footers, scaled to
+    the run's length in days: the quality gate's row-count band. (Only the ECG table: tonight's
+    lab rows are read for the night's patients alone, so the lab feed is judged by its whole
+    partitions instead, `lab_volume`.)"""
     scale = (hi - lo) / pd.Timedelta(days=1)
-    out = {}
-    for table in (c.ECG,):
-        first = (lo - pd.Timedelta(days=nights)).strftime("%Y-%m-%d")
-        last = (lo - pd.Timedelta(days=1)).strftime("%Y-%m-%d")
-        per_day: dict[str, int] = {}
-        for f in table_files(lake, table, first, last):
-            day = next((p[5:] for p in f.parts if p.startswith("date=")), None)
-            if day is not None:
-                per_day[day] = per_day.get(day, 0) + pq.ParquetFile(f).metadata.num_rows
-        if per_day:
-            out[table.name] = [per_day[d] * scale for d in sorted(per_day)]
-    return out
+    per_day = _rows_per_day(lake, c.ECG, *_previous_nights(lo, nights))
+    return {c.ECG.name: [per_day[d] * scale for d in sorted(per_day)]} if per_day else {}
 
 
 def stage_quality(lake, out, start, end, config=None, settings: Settings | None = None) -> dict:
