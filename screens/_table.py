@@ -16,6 +16,7 @@ The columns of each screen's table are documented in its module docstring, under
 from __future__ import annotations
 
 import re
+from functools import cache
 from typing import Callable, Sequence
 
 import numpy as np
@@ -38,6 +39,12 @@ def criterion_table(aligned: pd.DataFrame, columns: dict[str, object]) -> pd.Dat
     for name, values in columns.items():
         out[name] = values
     return out
+
+
+def column_readers(table: pd.DataFrame) -> tuple[Callable[[str], np.ndarray], Callable[[str], np.ndarray]]:
+    """(col, flag): a criterion column as an ndarray, and as a bool ndarray, each converted once
+    however often the dressing of the flagged rows reads it."""
+    return cache(lambda name: table[name].to_numpy()), cache(lambda name: table[name].to_numpy(dtype=bool))
 
 
 def fired_rules(table: pd.DataFrame, pairs: Sequence[tuple[Threshold, str]], rows: np.ndarray) -> list[list[dict]]:

@@ -147,7 +147,7 @@ from screens._frame import (
     text,
 )
 from screens._leads import DISPLAY_ORDER, LIMB, PRECORDIAL, wide
-from screens._table import criterion_table, dress_flagged, fired_rules, lead_lists, split_leads
+from screens._table import column_readers, criterion_table, dress_flagged, fired_rules, lead_lists, split_leads
 from screens.criteria import Rules, load_rules
 
 SCREEN = "hyperkalemia"
@@ -351,7 +351,7 @@ def screen_hyperkalemia(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules
 
 def _dress(aligned: pd.DataFrame, table: pd.DataFrame, hit: np.ndarray, r) -> pd.DataFrame:
     """Summary, caveats, evidence and score parts of the flagged rows, read off the criterion table."""
-    col = lambda name: table[name].to_numpy()   # noqa: E731 (short reads of typed columns)
+    col, _ = column_readers(table)
     k, k_off, k_prev, k_change = (num(table, c) for c in ("k_mmol_l", "k_offset_min", "k_prev_mmol_l", "k_change_mmol_l"))
     k_known = ~np.isnan(k)
     band_words = col("k_band")

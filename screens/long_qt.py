@@ -187,7 +187,7 @@ from screens._frame import (
     text,
     age_years,
 )
-from screens._table import criterion_table, dress_flagged, fired_rules
+from screens._table import column_readers, criterion_table, dress_flagged, fired_rules
 from screens.criteria import Rules, load_rules
 
 SCREEN = "long_qt"
@@ -473,7 +473,7 @@ def screen_long_qt(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | No
 
 def _dress(aligned: pd.DataFrame, table: pd.DataFrame, hit: np.ndarray, r) -> pd.DataFrame:
     """Summary, caveats, evidence and score parts of the flagged rows, read off the criterion table."""
-    col = lambda name: table[name].to_numpy()   # noqa: E731 (short reads of typed columns)
+    col, _ = column_readers(table)
     formula = r.setting("qtc_formula")
     qt, qrs, pr, rr, hr = (num(table, c) for c in ("qt_ms", "qrs_ms", "pr_ms", "rr_ms", "heart_rate_bpm"))
     female, male, sex_unknown = sex_masks(table)

@@ -235,7 +235,7 @@ from screens._leads import (
     group_pairs,
     wide,
 )
-from screens._table import criterion_table, dress_flagged, fired_rules, lead_lists, split_leads
+from screens._table import column_readers, criterion_table, dress_flagged, fired_rules, lead_lists, split_leads
 from screens.criteria import Rules, ScreenRules, load_rules
 
 SCREEN = "st_deviation"
@@ -628,10 +628,11 @@ def _criteria(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules | None) -
     severity = _severity(pattern, ev, r, deepest, n_pattern, n_wide_dep, st["aVR"].to_numpy())
     territory = {t: ev["territory"][t] & is_elev for t in TERRITORY_ORDER}
     territory["posterior"] = territory["posterior"] | is_post
-    lb_terr_leads = (ev["c1"] | ev["c3"] | ev["smith3"])
+    # LBBB/paced: the leads of concordant or excessive discordant elevation name their groups;
+    # concordant depression in V1-V3 reads as posterior, as with the plain criteria.
+    lb_up = (ev["c1"] | ev["c3"] | ev["smith3"]).reindex(columns=LEADS_AND_MINUS_AVR, fill_value=False)
     for t in TERRITORY_ORDER:
-        lb_t = lb_terr_leads[[l for l in TERRITORY_LEADS[t] if l in lb_terr_leads.columns]].any(axis=1).to_numpy() \
-            if any(l in lb_terr_leads.columns for l in TERRITORY_LEADS[t]) else np.zeros(n, dtype=bool)
+        lb_t = lb_up[TERRITORY_LEADS[t]].any(axis=1).to_numpy()
         if t == "posterior":
             lb_t = lb_t | ev["c2"].any(axis=1).to_numpy()
         territory[t] = territory[t] | (is_lbbb & lb_t)
@@ -745,8 +746,7 @@ def screen_st_deviation(aligned: pd.DataFrame, leads: pd.DataFrame, rules: Rules
 def _dress(aligned, table, lead_frames, hit, r) -> pd.DataFrame:
     """Summary, caveats, evidence and score parts of the flagged rows, read off the criterion
     table (the per-lead frames give the values the evidence lists)."""
-    col = lambda name: table[name].to_numpy()   # noqa: E731 (short reads of typed columns)
-    b = lambda name: table[name].to_numpy(dtype=bool)   # noqa: E731
+    col, b = column_readers(table)
     trop, trop_off, trop_url = num(aligned, "trop_ng_l"), num(aligned, "trop_offset_min"), num(aligned, "trop_url_ng_l")
     female, male, sex_unknown = sex_masks(table)
     qrs, age, paced = num(table, "qrs_ms"), num(table, "age_years"), b("paced")
