@@ -4,8 +4,8 @@ Each screen is one module, `screens/<name>.py`, holding
 `screen_<name>(aligned, leads, rules=None, *, with_criteria=False) -> findings`: a pure function
 (no I/O, no clock, inputs left unchanged). It first computes the screen's criterion table (one
 row per ECG, one typed column per criterion, tier and score parts; screens/_table.py, columns in
-the module docstring), then dresses the flagged rows from that table only. Adding a screen means adding its module, its section in
-`screens/rules.toml`, and one line in `SCREENS` below.
+the module docstring), then dresses the flagged rows from that table only. Adding a screen means
+adding its module, its section in `screens/rules.toml`, and one line in `SCREENS` below.
 
 Findings frame (FINDING_COLUMNS, in this order)
     ecg_id, patient_id (str); acquired_at (datetime64[us, UTC]); screen (str: hyperkalemia,

@@ -74,8 +74,8 @@ def lead_lists(mask: pd.DataFrame, order: Sequence[str]) -> np.ndarray:
     cols = [c for c in order if c in mask.columns]
     if not len(mask):
         return np.array([], dtype=object)
-    joined = mask[cols].astype(bool).to_numpy() @ np.array([f"{c}," for c in cols], dtype=object)
-    joined = np.where(mask[cols].to_numpy(dtype=bool).any(axis=1), joined, "")
+    m = mask[cols].to_numpy(dtype=bool)
+    joined = np.where(m.any(axis=1), m @ np.array([f"{c}," for c in cols], dtype=object), "")
     return np.array([s[:-1] if s else "" for s in joined], dtype=object)
 
 
