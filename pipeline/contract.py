@@ -32,8 +32,11 @@ IMPOSSIBLE_VALUE = "impossible_value"
 DUPLICATE_ID = "duplicate_id"
 UNKNOWN_LEAD = "unknown_lead"
 INVALID_TEXT = "invalid_text"          # not UTF-8, or a NUL byte (PostgreSQL refuses it in text)
+OUTSIDE_PARTITION = "outside_partition"  # timed more than the table's slack outside its date= folder
+BAD_PARTITION_NAME = "bad_partition_name"  # in a table subfolder not named date=YYYY-MM-DD (validate)
 REJECT_REASONS = (WRONG_TYPE, MISSING_VALUE, UNPARSEABLE_TIMESTAMP, NAIVE_TIMESTAMP, UNKNOWN_UNIT,
-                  IMPOSSIBLE_VALUE, DUPLICATE_ID, UNKNOWN_LEAD, INVALID_TEXT)
+                  IMPOSSIBLE_VALUE, DUPLICATE_ID, UNKNOWN_LEAD, INVALID_TEXT, OUTSIDE_PARTITION,
+                  BAD_PARTITION_NAME)
 REJECT_COLUMNS = ["table", "scope", "row_key", "file", "column", "reason", "detail"]
 
 # Column kinds.
@@ -58,7 +61,8 @@ class Table:
     key: tuple[str, ...]           # unique per row; duplicates are rejected
     time_column: str | None        # the UTC timestamp its date partitions follow
     optional: bool = False         # the lake may lack the whole table
-    partition_slack_days: int = 1  # partitions may follow a local date: read one more day each side
+    partition_slack_days: int = 1  # partitions may follow a local date: read one more day each side,
+    #                                and a row may be timed this many days outside its partition
     column_names: tuple[str, ...] = field(init=False)
 
     def __post_init__(self):

@@ -61,14 +61,20 @@ class _Problems:
 def normalise_table(raw: pd.DataFrame, table: c.Table, settings: Settings, scope: str = "night",
                     source: str = "", window: tuple[pd.Timestamp, pd.Timestamp] | None = None,
                     keep: dict[str, object] | None = None,
-                    partition_dates: tuple[str, str] | None = None) -> Normalised:
+                    partition_dates: tuple[str, str] | None = None,
+                    partitions: dict[str, str | None] | None = None) -> Normalised:
     """Contract rows of `table` from `raw` (one schema group of files, site names as exported).
 
     `window` ([lo, hi) on the table's time column) and `keep` (column -> allowed values) say
     what is in scope: rows whose valid value falls outside are not this run's input and leave
-    without a trace; rows whose value cannot be read stay in scope and are rejected, counted in
-    the run whose dates [first, last] (`partition_dates`) hold their file's partition. `clean`
-    keeps the FILE_COLUMN so that `reject_duplicates` can run over all files together."""
+    without a trace. Two kinds of row belong to their file's partition rather than to a window:
+    a row whose time cannot be read, and a row timed more than the table's
+    `partition_slack_days` outside the date of its `date=` folder (outside_partition; never
+    clean, in any read). Both are rejected, counted only by a read whose dates [first, last]
+    (`partition_dates`) hold their partition, and out of scope of every other read.
+    `partitions` maps each file (the FILE_COLUMN) to its partition date, None for a file outside
+    any `date=` folder (such rows have no partition: every read counts them). `clean` keeps the
+    FILE_COLUMN so that `reject_duplicates` can run over all files together."""
     df = raw.rename(columns=settings.columns.get(table.name, {}))
     missing = [col.name for col in table.columns if col.required and col.name not in df.columns]
     if missing:
@@ -89,7 +95,11 @@ def normalise_table(raw: pd.DataFrame, table: c.Table, settings: Settings, scope
 
     if table is c.LAB and settings.lab_codes:
         frame["analyte"] = frame["analyte"].replace(settings.lab_codes)
-    in_scope = _in_scope(frame, table, window, keep, partition_dates)
+    own, misfiled = _partition_rows(frame, table, partitions, partition_dates)
+    if misfiled.any():
+        problems.flag(misfiled, c.OUTSIDE_PARTITION, table.time_column,
+                      f"more than {table.partition_slack_days} day(s) outside the date of its date= folder")
+    in_scope = _in_scope(frame, table, window, keep, own, misfiled)
     _convert_units(frame, table, settings, problems)
     _check_bounds(frame, table, problems)
     if table is c.ECG_LEAD:
@@ -129,23 +139,58 @@ def _split(frame, table, problems, scope, in_scope) -> Normalised:
     return Normalised(clean=frame.loc[ok].reset_index(drop=True), rejects=rejects.astype("str"), placed=placed)
 
 
-def _in_scope(frame, table, window, keep, partition_dates) -> np.ndarray:
-    """False for rows whose readable value puts them outside this run's scope."""
+def _partition_rows(frame, table, partitions, partition_dates) -> tuple[np.ndarray, np.ndarray]:
+    """Per row: whether this read counts the rejects of its file's partition (`own`), and
+    whether its readable time lies outside [date - slack, date + 1 day + slack) of that
+    partition (`misfiled`). Worked out per file, then spread to rows through the file codes."""
+    n = len(frame)
+    own, misfiled = np.ones(n, dtype=bool), np.zeros(n, dtype=bool)
+    if partitions is None or table.time_column is None or n == 0:
+        return own, misfiled
+    files = frame[FILE_COLUMN].astype("category")
+    codes = files.cat.codes.to_numpy()
+    days = [partitions.get(f) for f in files.cat.categories]          # one per file, not per row
+    day = np.array([d if d is not None else "NaT" for d in days], dtype="datetime64[D]")
+    slack = np.timedelta64(table.partition_slack_days, "D")
+    first = (day - slack).astype("datetime64[us]")[codes]              # NaT: no partition
+    end = (day + np.timedelta64(1, "D") + slack).astype("datetime64[us]")[codes]
+    t = frame[table.time_column].to_numpy(dtype="datetime64[us]")      # UTC; NaT compares False
+    misfiled = (t < first) | (t >= end)
+    if partition_dates is not None:
+        lo, hi = partition_dates
+        own = np.array([d is None or lo <= d <= hi for d in days], dtype=bool)[codes]
+    return own, misfiled
+
+
+def _in_scope(frame, table, window, keep, own, misfiled) -> np.ndarray:
+    """False for rows whose readable value puts them outside this run's scope. A row with an
+    unreadable time, or timed outside its partition, is in scope where its partition is `own`."""
     inside = np.ones(len(frame), dtype=bool)
-    if window is not None and table.time_column is not None:
+    if table.time_column is not None:
         t = frame[table.time_column]
-        outside = t.notna() & ((t < window[0]) | (t >= window[1]))
-        inside &= ~outside.to_numpy()
-        unreadable = t.isna().to_numpy()
-        if partition_dates is not None and unreadable.any():
-            files = frame.loc[unreadable, FILE_COLUMN]
-            day = files.str.extract(r"date=(\d{4}-\d{2}-\d{2})", expand=False)
-            other_night = day.notna() & ((day < partition_dates[0]) | (day > partition_dates[1]))
-            inside[np.flatnonzero(unreadable)[other_night.to_numpy()]] = False
+        readable = t.notna().to_numpy()
+        in_window = readable.copy()
+        if window is not None:
+            in_window &= ((t >= window[0]) & (t < window[1])).to_numpy()
+        inside = (in_window & ~misfiled) | ((~readable | misfiled) & own)
     for name, values in (keep or {}).items():
         v = frame[name]
         inside &= ~(v.notna().to_numpy() & ~isin(v, values))
     return inside
+
+
+def reject_rows(raw: pd.DataFrame, table: c.Table, settings: Settings, scope: str, reason: str,
+                column: str, detail: str) -> pd.DataFrame:
+    """Every row of `raw` as a reject with one reason (e.g. rows of a folder no run can place):
+    the row's key where the key columns exist, else an empty key; never a value."""
+    df = raw.rename(columns=settings.columns.get(table.name, {})).reset_index(drop=True)
+    keys = pd.DataFrame({k: df[k] if k in df.columns else pd.Series("", index=df.index) for k in table.key},
+                        index=df.index)
+    return pd.DataFrame({
+        "table": table.name, "scope": scope, "row_key": _row_key(keys, table),
+        "file": df[FILE_COLUMN].to_numpy() if FILE_COLUMN in df.columns else "", "column": column,
+        "reason": reason, "detail": detail,
+    }, columns=c.REJECT_COLUMNS).astype("str")
 
 
 def empty_table(table: c.Table) -> pd.DataFrame:

@@ -73,15 +73,16 @@ def stage_load(lake, out, start, end, config=None, settings: Settings | None = N
     night = read_table(lake, c.ECG, settings, scope="night", window=(lo, hi))
     pids = night.clean["patient_id"].unique().tolist()
     keep = {"patient_id": pids}
+    own = (lo, hi)        # context reads count misfiled rows of tonight's partitions only (load.py)
     history = read_table(lake, c.ECG, settings, scope="window", keep=keep, columns=HISTORY_COLUMNS,
-                         window=(lo - pd.Timedelta(days=w["prior_ecg_max_days"]), lo))
+                         window=(lo - pd.Timedelta(days=w["prior_ecg_max_days"]), lo), night=own)
     lab_codes = sorted(settings.analyte_of_code())
     lab = read_table(lake, c.LAB, settings, scope="window", keep={**keep, "analyte": lab_codes},
                      window=(lo - pd.Timedelta(hours=w["lab_before_h"] + w["k_trend_h"]),
-                             hi + pd.Timedelta(hours=w["lab_after_h"])))
+                             hi + pd.Timedelta(hours=w["lab_after_h"])), night=own)
     patient = read_table(lake, c.PATIENT, settings, scope="window", keep=keep)
     medication = read_table(lake, c.MEDICATION, settings, scope="window", keep=keep,
-                            window=(lo - pd.Timedelta(hours=w["medication_h"]), hi))
+                            window=(lo - pd.Timedelta(hours=w["medication_h"]), hi), night=own)
     night, history = _reject_cross_partition_ids(night, history)
     ecg_history = pd.concat([history.clean, night.clean], ignore_index=True)
 

@@ -93,3 +93,13 @@ def write_lake(lake: Path, ecg=None, leads=None, labs=None, patients=None, medic
     if medication is not None:
         write_table(lake, "medication", medication, "administered_at")
     return Path(lake)
+
+
+def write_partition(lake: Path, name: str, folder: str, rows: list[dict] | pd.DataFrame,
+                    file_name: str = "part-9.parquet") -> Path:
+    """Write rows into lake/name/folder whatever their times say (a misfiled export, a folder
+    with a bad name): `folder` is the folder's name, e.g. "date=2026-11-29" or "date=yesterday"."""
+    df = rows if isinstance(rows, pd.DataFrame) else pd.DataFrame(rows)
+    path = Path(lake) / name / folder
+    path.mkdir(parents=True, exist_ok=True)
+    return _write(df, path / file_name, None)
