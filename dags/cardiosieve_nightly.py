@@ -11,7 +11,8 @@ night's exports are in the lake, and fails with a clear message after `landing_t
 Tasks exchange counts and paths only (XCom lands in the Airflow database and the UI): never a
 patient row, identifier or value. Bad data (unreadable lake, missing required column, failed
 quality gate, unusable config or interval) fails the task at once, without retries; anything
-else (a flaky mount, a database that is briefly away) is retried with exponential back-off.
+else (a flaky mount, a database that is briefly away, OUT or the store held by a command-line
+run: each task holds the run lock for its stage) is retried with exponential back-off.
 
 Nothing here reads files, the network or the Airflow database at parse time: module level reads
 only environment variables, and pandas, Great Expectations and pipeline/ are imported inside the
@@ -76,19 +77,46 @@ PARAMS = {
 # ---------------------------------------------------------------------------------------------
 # Helpers: run inside tasks only
 
-def call_stage(fn, *args, **kwargs):
+class StoreBusy(RuntimeError):
+    """Another run, or a long review write, holds OUT or the worklist store: retried with back-off."""
+
+
+def call_stage(fn, *args, lock: tuple[str, str | None] | None = None, **kwargs):
     """Run one pipeline stage; bad data (pipeline.errors.BadInputError) becomes
     AirflowFailException (no retries) with the stage's one-line message, which names files,
     tables, columns, checks and counts only. Anything else propagates and Airflow retries it with
     back-off: an OSError with errno (a flaky mount), a database briefly away. A store written by a
-    newer cardiosieve (StoreSchemaError) is bad input too: retrying cannot mend it."""
+    newer cardiosieve (StoreSchemaError) is bad input too: retrying cannot mend it.
+
+    `lock` = (out, db URL or None): hold the run lock of OUT and the store (pipeline/runlock.py)
+    for the stage, so that a command-line run on the same OUT or store never interleaves with a
+    task of this DAG (max_active_runs=1 keeps the DAG's own runs apart). A held lock, or a SQLite
+    store kept locked past its busy timeout, is StoreBusy: the task is retried later."""
+    from contextlib import nullcontext
+
     from airflow.sdk.exceptions import AirflowFailException
     from pipeline.errors import BadInputError
+    from pipeline.runlock import RunLockError, run_lock
+    from pipeline.store import StoreLockedError, sqlite_url
 
     try:
-        return fn(*args, **kwargs)
+        if lock is None:
+            held = nullcontext()
+        else:
+            from pipeline.run import usable_out
+            out = usable_out(lock[0])
+            held = run_lock(out, lock[1] or sqlite_url(out))
+        with held:
+            return fn(*args, **kwargs)
+    except (RunLockError, StoreLockedError) as exc:
+        raise StoreBusy(f"{type(exc).__name__}: {exc}") from None
     except BadInputError as exc:
         raise AirflowFailException(f"{type(exc).__name__}: {exc}") from None
+
+
+def stage_lock(params) -> tuple[str, str | None]:
+    """The `lock` argument of call_stage for this run's OUT and store."""
+    return params["out"], worklist_db_url(params)
 
 
 def run_interval_bounds(context) -> tuple[str, str]:
@@ -222,11 +250,17 @@ def cardiosieve_nightly():
     @task
     def validate_contract(**context) -> dict:
         """Read the night and its context against the lake contract; write stage files and rejects."""
+        from pipeline.publish import clean_leftovers
         from pipeline.run import stage_load
+
+        def load(*args, **kwargs):
+            clean_leftovers(params["out"])          # what a crashed run left behind, under the lock
+            return stage_load(*args, **kwargs)
 
         params = context["params"]
         start, end = run_interval_bounds(context)
-        loaded = call_stage(stage_load, params["lake"], params["out"], start, end, config=params["config"] or None)
+        loaded = call_stage(load, params["lake"], params["out"], start, end, config=params["config"] or None,
+                            lock=stage_lock(params))
         return {**loaded, "start": start, "end": end}
 
     @task
@@ -235,20 +269,21 @@ def cardiosieve_nightly():
         from pipeline.run import stage_quality
 
         return call_stage(stage_quality, params["lake"], params["out"], loaded["start"], loaded["end"],
-                          config=params["config"] or None)
+                          config=params["config"] or None, lock=stage_lock(params))
 
     @task
     def align(loaded: dict, quality: dict, params=None) -> dict:
         from pipeline.run import stage_align
 
         return call_stage(stage_align, params["out"], loaded["start"], loaded["end"],
-                          config=params["config"] or None, lake=params["lake"])
+                          config=params["config"] or None, lake=params["lake"], lock=stage_lock(params))
 
     @task
     def screen(loaded: dict, aligned: dict, params=None) -> dict:
         from pipeline.run import stage_screen
 
-        return call_stage(stage_screen, params["out"], loaded["start"], loaded["end"], config=params["config"] or None)
+        return call_stage(stage_screen, params["out"], loaded["start"], loaded["end"], config=params["config"] or None,
+                          lock=stage_lock(params))
 
     @task(outlets=[WORKLIST])
     def publish_worklist(loaded: dict, screened: dict, params=None, outlet_events=None) -> dict:
@@ -256,7 +291,7 @@ def cardiosieve_nightly():
         from pipeline.run import stage_worklist
 
         published = call_stage(stage_worklist, params["out"], loaded["start"], loaded["end"],
-                               config=params["config"] or None, db=worklist_db_url(params))
+                               config=params["config"] or None, db=worklist_db_url(params), lock=stage_lock(params))
         outlet_events[WORKLIST].extra = {"interval": [loaded["start"], loaded["end"]],
                                          "items_tonight": published["items_tonight"]}
         return published
@@ -273,7 +308,7 @@ def cardiosieve_nightly():
         summary = {"tables": tables, "quality": quality, "aligned": aligned,
                    "findings": screened["by_screen_tier"], "worklist": published}
         done = call_stage(stage_finish, params["out"], loaded["start"], loaded["end"], summary,
-                          config=params["config"] or None)
+                          config=params["config"] or None, lock=stage_lock(params))
         return done["outputs"]
 
     loaded = validate_contract()

@@ -2,8 +2,9 @@
 
 Only the standard library is imported at start-up, so `cardiosieve --help` answers at once and
 each command imports what it uses. Exit codes: 0 success; 2 bad input or configuration, with a
-one-line reason; 1 internal error. Output is counts only: it lands in scheduler logs, so it never
-carries a patient identifier or a value from a row.
+one-line reason; 3 partly done: `review --import-csv` rejected some lines (each listed with its line
+number; the good lines were imported); 1 internal error. Output is counts only: it lands in
+scheduler logs, so it never carries a patient identifier or a value from a row.
 """
 from __future__ import annotations
 
@@ -13,7 +14,10 @@ import sys
 from pipeline import CAUTION
 from pipeline.errors import BadInputError
 
-EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT = 0, 1, 2
+EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT, EXIT_PARTIAL = 0, 1, 2, 3
+EXIT_CODES_HELP = ("Exit codes: 0 success, 2 bad input or configuration (one-line reason), "
+                   "3 review --import-csv rejected some lines (each listed; the good ones were imported), "
+                   "1 internal error.")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -21,7 +25,7 @@ def build_parser() -> argparse.ArgumentParser:
         prog="cardiosieve",
         description="Screen ECG measurements against laboratory results and write a prioritised "
                     "worklist for clinical review. " + CAUTION,
-        epilog="Exit codes: 0 success, 2 bad input or configuration, 1 internal error.")
+        epilog=EXIT_CODES_HELP)
     sub = p.add_subparsers(dest="command", metavar="COMMAND")
 
     run = sub.add_parser("run", help="screen the ECGs acquired in [start, end) and write the worklist",
@@ -42,7 +46,8 @@ def build_parser() -> argparse.ArgumentParser:
     _lake_args(val)
     val.add_argument("--start", help="limit to rows timed in [start, end)")
     val.add_argument("--end", help="end of that interval, excluded")
-    val.add_argument("--out", help="also write OUT/rejects.parquet")
+    val.add_argument("--out", help="also write OUT/validation_rejects.parquet (beside, never over, a run's "
+                     "published rejects.parquet)")
     val.set_defaults(handler=_cmd_validate)
 
     try:

@@ -1,12 +1,18 @@
 """Worklist sub-commands of the cardiosieve CLI: review, yield, export, show.
 
 `register(subparsers)` adds them to the CLI's argparse sub-parsers; each sets `handler` (also as
-`func`), a function taking the parsed arguments and returning an exit code (0 fine, 1 some rows
-rejected, 2 usage or data error). Only the standard library is imported here at module level: pandas, SQLAlchemy and
-scipy are imported inside the handlers, so `cardiosieve --help` stays fast.
+`func`), a function taking the parsed arguments and returning an exit code (pipeline.cli):
+0 fine; 2 usage or data error, one line (an error about the store itself, such as a URL of
+another database or a store locked by another process, is raised as a BadInputError for the
+CLI to print); 3 (EXIT_PARTIAL) `review --import-csv` rejected some lines (each listed; the
+good ones were imported). 1 stays the CLI's "internal error". Only the standard library is imported
+here at module level: pandas, SQLAlchemy and scipy are imported inside the handlers, so
+`cardiosieve --help` stays fast.
 
-`show` is the command meant for a person to view the ranked worklist and may print patient_id.
-The nightly `run` prints counts only. Nothing here prints row values to stderr.
+Every command here reads the store (OUT/worklist.sqlite, or --db) and none creates one: a
+missing SQLite file is an error naming it, not an empty worklist. `show` is the command meant
+for a person to view the ranked worklist and may print patient_id. The nightly `run` prints
+counts only. Nothing here prints row values to stderr.
 """
 from __future__ import annotations
 
@@ -15,6 +21,8 @@ import sys
 from pathlib import Path
 
 from pipeline import CAUTION
+from pipeline.cli import EXIT_BAD_INPUT, EXIT_OK, EXIT_PARTIAL
+from pipeline.errors import BadInputError
 # Kept in step with pipeline.store.OUTCOMES (tests/test_commands.py checks it); repeated here
 # because this module may not import the store at start-up.
 OUTCOME_HELP = "finding_real, finding_not_real, already_known, data_problem"
@@ -37,7 +45,12 @@ def register(subparsers) -> None:
                                           "reviewer_role, outcome, note). Outcomes: finding_real (the "
                                           "flagged abnormality is there and was news), finding_not_real "
                                           "(it is not there), already_known (there, already known), "
-                                          "data_problem (flagged because of wrong or mismatched data).")
+                                          "data_problem (flagged because of wrong or mismatched data).",
+                              epilog=f"Exit codes: {EXIT_OK} recorded (or already recorded), {EXIT_BAD_INPUT} bad "
+                                     f"input (one-line reason; for --import-csv a whole-file error, nothing "
+                                     f"imported), {EXIT_PARTIAL} --import-csv rejected some lines (each "
+                                     f"listed with its line number; the good lines were imported), 1 "
+                                     f"internal error.")
     p.add_argument("item_id", nargs="?", help="the worklist item reviewed")
     p.add_argument("--outcome", help=f"one of: {OUTCOME_HELP}")
     p.add_argument("--role", help="reviewer role (e.g. cardiology registrar), not a name")
@@ -73,16 +86,17 @@ def register(subparsers) -> None:
 # ---------------------------------------------------------------------------------------------
 def _fail(message: str) -> int:
     print(f"cardiosieve: {message}", file=sys.stderr)
-    return 2
+    return EXIT_BAD_INPUT
 
 
-def _url(args, must_exist: bool = True) -> str | None:
-    """The store URL from --db or --out; None (after a message) when unusable."""
+def _url(args) -> str | None:
+    """The store URL from --db or --out; None (after a message) when neither is given or OUT
+    holds no store. A --db URL is checked by open_store(url, create=False)."""
     if args.db:
         return args.db
     if args.out:
         path = Path(args.out) / "worklist.sqlite"
-        if must_exist and not path.exists():
+        if not path.exists():
             _fail(f"no worklist database at {path}")
             return None
         from pipeline.store import sqlite_url
@@ -91,18 +105,25 @@ def _url(args, must_exist: bool = True) -> str | None:
     return None
 
 
+def _store(url: str):
+    """The existing store at `url`, never a new one (StoreUrlError otherwise, exit 2)."""
+    from pipeline.store import open_store
+    return open_store(url, create=False)
+
+
 def handle_review(args) -> int:
-    from pipeline.store import StoreSchemaError, import_reviews_csv, open_store, record_review
+    from pipeline.store import import_reviews_csv, record_review
 
     url = _url(args)
     if url is None:
-        return 2
+        return EXIT_BAD_INPUT
     if args.import_csv:
         if args.item_id or args.outcome:
             return _fail("review: give either ITEM_ID --outcome ... or --import-csv FILE, not both")
+        engine = _store(url)
         try:
-            counts = import_reviews_csv(open_store(url), args.import_csv, timezone=args.timezone)
-        except StoreSchemaError:           # a ValueError too, but the CLI's to report (exit 2)
+            counts = import_reviews_csv(engine, args.import_csv, timezone=args.timezone)
+        except BadInputError:              # about the store (locked, schema): the CLI's to report
             raise
         except (OSError, ValueError) as exc:
             return _fail(f"review: {exc}")
@@ -110,20 +131,21 @@ def handle_review(args) -> int:
               f"already recorded {counts['duplicate']}, rejected {counts['rejected']}")
         for r in counts["rejects"]:
             print(f"  rejected line {r['line']}: {r['column']}: {r['reason']}")
-        return 1 if counts["rejected"] else 0
+        return EXIT_PARTIAL if counts["rejected"] else EXIT_OK
     if not (args.item_id and args.outcome and args.role):
         return _fail("review: ITEM_ID, --outcome and --role are required (or --import-csv FILE)")
     import pandas as pd
 
+    engine = _store(url)
     try:
         at = pd.Timestamp(args.at) if args.at else pd.Timestamp.now(tz="UTC")   # time of entry
-        recorded = record_review(open_store(url), args.item_id, args.outcome, args.role, args.note, at)
-    except StoreSchemaError:
+        recorded = record_review(engine, args.item_id, args.outcome, args.role, args.note, at)
+    except BadInputError:
         raise
     except ValueError as exc:
         return _fail(str(exc))
     print(f"item {args.item_id}: " + ("review recorded, item closed" if recorded else "review already recorded"))
-    return 0
+    return EXIT_OK
 
 
 def format_table(rows: list[list[str]], header: list[str], right: set[str] = frozenset()) -> str:
@@ -136,12 +158,12 @@ def format_table(rows: list[list[str]], header: list[str], right: set[str] = fro
 
 
 def handle_yield(args) -> int:
-    from pipeline.store import open_store, yield_table
+    from pipeline.store import yield_table
 
     url = _url(args)
     if url is None:
-        return 2
-    table = yield_table(open_store(url), since=args.since)
+        return EXIT_BAD_INPUT
+    table = yield_table(_store(url), since=args.since)
     header = ["screen", "tier", "items", "reviewed", "finding_real", "already_known", "ppv", "ppv_95ci",
               "median_h_to_review"]
     def num(x, fmt):
@@ -153,37 +175,36 @@ def handle_yield(args) -> int:
     print(format_table(rows, header, right=set(header) - {"screen", "ppv_95ci"}))
     print("ppv = (finding_real + already_known) / reviewed, by each item's latest review; "
           "95 % Wilson score interval.")
-    return 0
+    return EXIT_OK
 
 
 def handle_export(args) -> int:
-    from pipeline.store import export_items, open_store
+    from pipeline.store import export_items
 
     url = _url(args)
     if url is None:
-        return 2
+        return EXIT_BAD_INPUT
+    engine = _store(url)
     if args.output == "-":
-        export_items(open_store(url), args.format, sys.stdout)
+        export_items(engine, args.format, sys.stdout)
     else:
-        n = export_items(open_store(url), args.format, args.output)
+        n = export_items(engine, args.format, args.output)
         print(f"exported {n} items to {args.output}", file=sys.stderr)
-    return 0
+    return EXIT_OK
 
 
 def handle_show(args) -> int:
+    """The store's ranked items, as reviews left them: OUT/worklist.parquet is the night's copy,
+    so an item reviewed this morning would still show open there."""
     import pandas as pd
 
-    if args.db:
-        from pipeline.store import open_store, read_items
-        items = read_items(open_store(args.db))
-    elif args.out:
-        path = Path(args.out) / "worklist.parquet"
-        if not path.exists():
-            return _fail(f"no worklist at {path}")
-        items = pd.read_parquet(path)
-    else:
-        return _fail("give --db URL or --out OUT")
+    from pipeline.store import read_items
     from pipeline.worklist import STATUS_CLOSED
+
+    url = _url(args)
+    if url is None:
+        return EXIT_BAD_INPUT
+    items = read_items(_store(url))
 
     total = len(items)
     if not args.include_closed:
@@ -198,4 +219,4 @@ def handle_show(args) -> int:
     print(CAUTION)
     print(format_table(rows, SHOW_COLUMNS, right={"rank", "tier", "score"}))
     print(f"{len(head)} of {len(items)} items shown ({total} stored; times UTC)")
-    return 0
+    return EXIT_OK

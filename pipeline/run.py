@@ -2,11 +2,13 @@
 
 Each stage reads what the previous one wrote under OUT/_stage/<start>_<end>/ and returns a small
 dict of counts and paths (never rows): it is what lands in scheduler logs and XCom. Every file is
-written to a temporary name and renamed, so a crash leaves the previous output whole and a rerun
-of the same interval rewrites the same files.
+written to a temporary name and renamed, and the last stage publishes the run's outputs together
+(pipeline/publish.py): a crash at any point leaves the previous published state or the new one,
+never a mix, and a rerun of the same interval rewrites the same files.
 """
 from __future__ import annotations
 
+import os
 import time
 from datetime import datetime
 from pathlib import Path
@@ -17,13 +19,20 @@ from pipeline import CAUTION
 from pipeline import contract as c
 from pipeline.config import Settings, load_settings
 from pipeline.errors import BadInputError
-from pipeline.files import write_json_atomic, write_parquet_atomic
+from pipeline.faults import fault_point
+from pipeline.files import private_dir, write_json_atomic, write_parquet_atomic
 from pipeline.frames import isin
+from pipeline.publish import STAGE_DIR
 
-STAGE_DIR = "_stage"
 # What the prior-ECG lookup needs of the patients' earlier ECGs (pipeline/align.py PRIOR_COLUMNS).
 CHECKED_TABLES = ("ecg", "ecg_lead", "lab", "patient", "medication")   # what the quality gate sees
 HISTORY_COLUMNS = ["ecg_id", "patient_id", "acquired_at", "heart_rate_bpm", "rr_ms", "pr_ms", "qrs_ms", "qt_ms"]
+
+
+# Run bounds cardiosieve accepts: ECG carts with digital exports, and far enough ahead for any
+# scheduler's logical dates. Partition names and the stage folders' names need four-digit years.
+FIRST_INSTANT = pd.Timestamp("1980-01-01", tz="UTC")
+LAST_INSTANT = pd.Timestamp("2199-12-31", tz="UTC")
 
 
 class RunError(BadInputError):
@@ -39,6 +48,9 @@ def parse_instant(value: str | datetime | pd.Timestamp, name: str) -> pd.Timesta
     if ts is pd.NaT:
         raise RunError(f"--{name} is empty")
     ts = ts.tz_localize("UTC") if ts.tzinfo is None else ts.tz_convert("UTC")
+    if not FIRST_INSTANT <= ts <= LAST_INSTANT:
+        raise RunError(f"--{name} {value!r} is outside the supported range "
+                       f"{FIRST_INSTANT:%Y-%m-%d} to {LAST_INSTANT:%Y-%m-%d}")
     return ts.as_unit("us")
 
 
@@ -50,9 +62,8 @@ def interval(start, end) -> tuple[pd.Timestamp, pd.Timestamp]:
 
 
 def stage_dir(out: str | Path, lo: pd.Timestamp, hi: pd.Timestamp) -> Path:
-    d = Path(out) / STAGE_DIR / f"{lo:%Y%m%dT%H%M%SZ}_{hi:%Y%m%dT%H%M%SZ}"
-    d.mkdir(parents=True, exist_ok=True)
-    return d
+    private_dir(Path(out) / STAGE_DIR)
+    return private_dir(Path(out) / STAGE_DIR / f"{lo:%Y%m%dT%H%M%SZ}_{hi:%Y%m%dT%H%M%SZ}")
 
 
 # ---------------------------------------------------------------------------------------------
@@ -68,7 +79,8 @@ def stage_load(lake, out, start, end, config=None, settings: Settings | None = N
     w = settings.windows
     d = stage_dir(out, lo, hi)
 
-    for stale in [*d.glob("*.checked.parquet"), *d.glob("rejects_*.parquet"), d / "prior_lead.parquet"]:
+    for stale in [*d.glob("*.checked.parquet"), *d.glob("rejects_*.parquet"), d / "prior_lead.parquet",
+                  d / "quality.json", d / "quality.html"]:
         stale.unlink(missing_ok=True)                      # derived from an earlier load
     night = read_table(lake, c.ECG, settings, scope="night", window=(lo, hi))
     pids = night.clean["patient_id"].unique().tolist()
@@ -198,7 +210,6 @@ def stage_align(out, start, end, config=None, settings: Settings | None = None, 
     aligned = align(ecg, history, read_stage(d, "lab"), read_stage(d, "patient"), read_stage(d, "medication"), settings,
                     lab_rejects=_gate_lab_rejects(d))
     write_parquet_atomic(aligned, d / "aligned.parquet")
-    write_parquet_atomic(aligned, Path(out) / "aligned.parquet")
     prior_leads = 0
     if lake is not None:
         prior_leads = _load_prior_leads(lake, d, aligned, settings)
@@ -266,9 +277,11 @@ def trailing_counts(lake, lo: pd.Timestamp, hi: pd.Timestamp, nights: int = 28) 
 def stage_quality(lake, out, start, end, config=None, settings: Settings | None = None) -> dict:
     """The data-quality gate over the loaded night (pipeline/quality.py, Great Expectations).
 
-    Writes OUT/quality.json and OUT/quality.html whatever the outcome, moves failing rows to
-    the rejects, and raises QualityGateError on a critical failure: nothing is published then."""
-    from pipeline.quality import enforce, run_quality, write_report
+    Writes quality.json and quality.html to the stage folder (published with the run), moves
+    failing rows to the rejects, and raises QualityGateError on a critical failure: nothing is
+    published then, and the report is also written to OUT/gate_stopped/ for the operator."""
+    from pipeline.publish import GATE_STOPPED
+    from pipeline.quality import QualityGateError, enforce, run_quality, write_report
 
     settings = settings or load_settings(config)
     lo, hi = interval(start, end)
@@ -278,7 +291,13 @@ def stage_quality(lake, out, start, end, config=None, settings: Settings | None 
     tonight = {"ecg": len(tables["ecg"]) + int(((load_rejects["table"] == "ecg") & (load_rejects["scope"] == "night")).sum())}
     result = run_quality(tables, hi, trailing_counts=trailing_counts(lake, lo, hi), settings=settings,
                          tonight_counts=tonight, lab_volume=lab_volume(lake, lo, hi))
-    paths = write_report(result, out)
+    paths = write_report(result, d)
+    if not result.passed:
+        stopped = write_report(result, private_dir(Path(out) / GATE_STOPPED))
+        try:
+            enforce(result)
+        except QualityGateError as exc:
+            raise QualityGateError(exc.failures + [f"report {stopped['html']}"]) from None
     if result.passed:
         for n, df in result.clean.items():
             write_parquet_atomic(df, d / f"{n}.checked.parquet")
@@ -335,7 +354,7 @@ def stage_screen(out, start, end, config=None, settings: Settings | None = None)
 
 def stage_worklist(out, start, end, config=None, db=None, settings: Settings | None = None) -> dict:
     """Fold findings into worklist items, upsert them into the database in one transaction, and
-    write OUT/worklist.parquet (the database's ranked items) atomically."""
+    write the database's ranked items to the stage's worklist.parquet (published by stage_finish)."""
     from pipeline import store, worklist
 
     settings = settings or load_settings(config)
@@ -353,14 +372,15 @@ def stage_worklist(out, start, end, config=None, db=None, settings: Settings | N
                                      episode_h=settings.windows["episode_h"],
                                      explainers=worklist.explainers_for(rules))
         db_counts = store.upsert_items(engine, items)
+        fault_point("after_commit")
         ranked = store.read_items(engine)
     finally:
         engine.dispose()
     ranked = ranked.sort_values("rank", kind="stable") if "rank" in ranked.columns else ranked
     ranked.attrs["caution"] = CAUTION                      # travels in the Parquet file's metadata
-    path = write_parquet_atomic(ranked, Path(out) / "worklist.parquet")
+    write_parquet_atomic(ranked, d / "worklist.parquet")
     active = ranked[ranked["status"].isin(worklist.ACTIVE_STATUSES)] if len(ranked) else ranked
-    return {"items_tonight": int(len(items)), "db_counts": db_counts, "path": str(path),
+    return {"items_tonight": int(len(items)), "db_counts": db_counts,
             "by_screen": {k: int(v) for k, v in active.groupby("screen").size().items()} if len(active) else {}}
 
 
@@ -373,28 +393,53 @@ def run_interval(lake, out, start, end, config=None, db=None, quality: bool = Tr
     seconds per stage only) and writes it to OUT/run_summary.json beside the worklist, the
     aligned table and the rejects. An interval longer than `chunk_days` runs chunk by chunk,
     in time order, so that the worklist folds episodes exactly as nightly runs would."""
+    from pipeline.publish import clean_leftovers
     from pipeline.runlock import run_lock
-    from pipeline.store import sqlite_url
+    from pipeline.store import check_store_url, sqlite_url
 
     settings = load_settings(config)
     lo, hi = interval(start, end)
-    Path(out).mkdir(parents=True, exist_ok=True)
+    out = usable_out(out)
+    check_store_url(db or sqlite_url(out))
     step = pd.Timedelta(days=chunk_days)
     bounds = [lo]
     while bounds[-1] + step < hi:
         bounds.append(bounds[-1] + step)
     bounds.append(hi)
     with run_lock(out, db or sqlite_url(out)):    # one run at a time per OUT and store
+        clean_leftovers(out)                      # what a crashed run left behind
         parts = [_run_chunk(lake, out, a, b, settings, db, quality) for a, b in zip(bounds[:-1], bounds[1:])]
         return stage_finish(out, lo, hi, _add_up(parts) | {"chunks": len(parts)}, settings, bounds)
 
 
+def usable_out(out) -> Path:
+    """OUT as an owner-only folder the run can write in, made if missing; RunError (exit 2) for
+    an existing file, a folder that cannot be made or one the run may not write in."""
+    out = Path(out)
+    if out.exists() and not out.is_dir():
+        raise RunError(f"--out {out} is a file, not a folder")
+    try:
+        private_dir(out)
+    except PermissionError:
+        raise RunError(f"--out {out}: no permission to create it") from None
+    except FileExistsError:
+        raise RunError(f"--out {out}: a file stands in its path") from None
+    if not os.access(out, os.W_OK | os.X_OK):
+        raise RunError(f"--out {out}: no permission to write in it")
+    return out
+
+
 def stage_finish(out, start, end, summary: dict, settings: Settings | None = None,
                  chunk_bounds: list[pd.Timestamp] | None = None, config=None) -> dict:
-    """The last stage: OUT/rejects.parquet (every reject of the interval), OUT/aligned.parquet
-    (every aligned ECG) and OUT/run_summary.json, the stage summaries put together with the
-    reject counts by reason, the caution and the output paths. `chunk_bounds` lists the
-    boundaries of the chunks a backfill ran in; a single-chunk run passes none."""
+    """The last stage: publish the run (pipeline/publish.py) as one folder holding rejects.parquet
+    (every reject of the interval), aligned.parquet (every aligned ECG), the criterion tables,
+    the worklist, the quality report and run_summary.json (the stage summaries put together with
+    the reject counts by reason, the caution and the output paths), switched in as OUT's
+    published state with one rename. `chunk_bounds` lists the boundaries of the chunks a
+    backfill ran in; a single-chunk run passes none."""
+    from pipeline.publish import new_run_folder, prune, publish, published_names
+    from screens import SCREENS
+
     settings = settings or load_settings(config)
     lo, hi = interval(start, end)
     bounds = chunk_bounds or [lo, hi]
@@ -402,34 +447,56 @@ def stage_finish(out, start, end, summary: dict, settings: Settings | None = Non
     rejects = pd.concat([all_rejects(d) for d in dirs], ignore_index=True)
     aligned = [pd.read_parquet(d / "aligned.parquet") for d in dirs]
     out = Path(out)
-    write_parquet_atomic(rejects, out / "rejects.parquet")
-    write_parquet_atomic(pd.concat(aligned, ignore_index=True) if len(aligned) > 1 else aligned[0],
-                  out / "aligned.parquet")
-    criteria = _publish_criteria(out, dirs)
-    summary = {**summary, "interval": [lo.isoformat(), hi.isoformat()], "config": settings.source,
-               "caution": CAUTION, "rejects_by_reason": _reasons(rejects)}
-    summary["outputs"] = {"worklist": summary["worklist"]["path"], "aligned": str(out / "aligned.parquet"),
-                          "rejects": str(out / "rejects.parquet"), "summary": str(out / "run_summary.json"),
-                          **{f"criteria_{name}": str(path) for name, path in criteria.items()}}
-    write_json_atomic(summary, out / "run_summary.json")
-    return summary
+    folder = new_run_folder(out)
+    try:
+        write_parquet_atomic(rejects, folder / "rejects.parquet")
+        write_parquet_atomic(pd.concat(aligned, ignore_index=True) if len(aligned) > 1 else aligned[0],
+                             folder / "aligned.parquet")
+        criteria = _concat_criteria(folder, dirs, SCREENS)
+        for name in ("worklist.parquet", "quality.json", "quality.html"):   # the last chunk's
+            if (dirs[-1] / name).exists():
+                _link_or_copy(dirs[-1] / name, folder / name)
+        summary = {**summary, "interval": [lo.isoformat(), hi.isoformat()], "config": settings.source,
+                   "caution": CAUTION, "rejects_by_reason": _reasons(rejects)}
+        if "quality" in summary:
+            summary["quality"] = {**summary["quality"], "report": str(out / "quality.html")}
+        summary["outputs"] = {"worklist": str(out / "worklist.parquet"), "aligned": str(out / "aligned.parquet"),
+                              "rejects": str(out / "rejects.parquet"), "summary": str(out / "run_summary.json"),
+                              **{f"criteria_{name}": str(out / f"criteria_{name}.parquet") for name in criteria}}
+        write_json_atomic(summary, folder / "run_summary.json")
+        run_id = f"{lo:%Y%m%dT%H%M%SZ}_{hi:%Y%m%dT%H%M%SZ}"
+        final = publish(out, folder, run_id, published_names(SCREENS))
+    except BaseException:
+        import shutil
+        shutil.rmtree(folder, ignore_errors=True)
+        raise
+    fault_point("after_switch")
+    prune(out, keep_stage=dirs)
+    return {**summary, "run_folder": str(final)}
 
 
-def _publish_criteria(out: Path, dirs: list[Path]) -> dict[str, Path]:
-    """OUT/criteria_<screen>.parquet: every chunk's criterion table of each screen, in time order.
-    A screen with no table this run (an empty night) leaves no stale file from an earlier run."""
-    from screens import SCREENS
-
-    written = {}
-    for name in SCREENS:
-        path = out / f"criteria_{name}.parquet"
-        parts = [pd.read_parquet(d / path.name) for d in dirs if (d / path.name).exists()]
+def _concat_criteria(folder: Path, dirs: list[Path], screens) -> list[str]:
+    """folder/criteria_<screen>.parquet: every chunk's criterion table of each screen, in time
+    order; returns the screens written (a screen with no table this run, on an empty night,
+    has no file, so none from an earlier run shows through)."""
+    written = []
+    for name in screens:
+        parts = [pd.read_parquet(d / f"criteria_{name}.parquet") for d in dirs if (d / f"criteria_{name}.parquet").exists()]
         if parts:
-            write_parquet_atomic(pd.concat(parts, ignore_index=True) if len(parts) > 1 else parts[0], path)
-            written[name] = path
-        else:
-            path.unlink(missing_ok=True)
+            write_parquet_atomic(pd.concat(parts, ignore_index=True) if len(parts) > 1 else parts[0],
+                                 folder / f"criteria_{name}.parquet")
+            written.append(name)
     return written
+
+
+def _link_or_copy(src: Path, dst: Path) -> None:
+    """dst as the same content as src: a hard link (stage files are replaced, never changed in
+    place), or a copy where the file system has none."""
+    try:
+        os.link(src, dst)
+    except OSError:
+        import shutil
+        shutil.copyfile(src, dst)
 
 
 def _run_chunk(lake, out, lo, hi, settings: Settings, db, quality: bool) -> dict:
@@ -442,12 +509,16 @@ def _run_chunk(lake, out, lo, hi, settings: Settings, db, quality: bool) -> dict
         return result
 
     loaded = timed("load", stage_load, lake, out, lo, hi, settings=settings)
+    fault_point("after_load")
     summary = {"tables": loaded["tables"]}
     if quality:
         summary["quality"] = timed("quality", stage_quality, lake, out, lo, hi, settings=settings)
+        fault_point("after_quality")
     summary["aligned"] = timed("align", stage_align, out, lo, hi, settings=settings, lake=lake)
+    fault_point("after_align")
     summary["tables"]["ecg"]["screened"] = summary["aligned"]["aligned"]
     summary["findings"] = timed("screen", stage_screen, out, lo, hi, settings=settings)["by_screen_tier"]
+    fault_point("after_screen")
     summary["worklist"] = timed("worklist", stage_worklist, out, lo, hi, db=db, settings=settings)
     summary["seconds"] = seconds
     return summary

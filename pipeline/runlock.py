@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import fcntl
 import hashlib
+import os
 from contextlib import ExitStack, contextmanager
 from pathlib import Path
 from typing import Iterator
@@ -28,7 +29,8 @@ class RunLockError(BadInputError):
 
 def _file_lock(path: Path, stack: ExitStack) -> None:
     path.parent.mkdir(parents=True, exist_ok=True)
-    fh = stack.enter_context(open(path, "a+"))
+    # Created owner-only, like every file cardiosieve writes (pipeline/files.py), whatever the umask.
+    fh = stack.enter_context(os.fdopen(os.open(path, os.O_RDWR | os.O_CREAT, 0o600), "r+"))
     try:
         fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
     except BlockingIOError:

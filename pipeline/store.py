@@ -14,6 +14,13 @@ SQLite by default (OUT/worklist.sqlite, see sqlite_url), PostgreSQL through a
 written and UTC is assumed on the way back). JSON travels as text. Nothing here logs or prints
 row values; errors name tables, columns, files and counts.
 
+The store names patients: a SQLite file open_store creates is owner-only (0600, whatever the
+umask; SQLite gives its journal and WAL files the database file's permissions), and so is a CSV
+export written to a file. Errors a person can fix are BadInputErrors (the CLI exits 2 with one
+line): a URL of another database or a missing driver, a SQLite folder or (for the commands that
+only use a store) file that does not exist (StoreUrlError), a SQLite store another process keeps
+locked past the busy timeout (StoreLockedError), a schema this code cannot use (StoreSchemaError).
+
 Sources
     WILSON-1927    Wilson EB. Probable inference, the law of succession, and statistical inference.
                    J Am Stat Assoc 1927;22:209-212 (the score interval).
@@ -26,6 +33,7 @@ from __future__ import annotations
 import datetime as dt
 import os
 import re
+import sqlite3
 from contextlib import contextmanager
 from pathlib import Path
 
@@ -33,13 +41,14 @@ import numpy as np
 import pandas as pd
 from sqlalchemy import (CheckConstraint, Column, DateTime, Float, ForeignKey, Index, Integer, MetaData,
                         String, Table, Text, TypeDecorator, UniqueConstraint, bindparam, case,
-                        create_engine, delete, func, insert, inspect, select, update)
+                        create_engine, delete, event, func, insert, inspect, select, update)
 from sqlalchemy.dialects import postgresql, sqlite
-from sqlalchemy.engine import Connection, Engine
+from sqlalchemy.engine import URL, Connection, Engine, make_url
+from sqlalchemy.exc import ArgumentError, NoSuchModuleError
 from sqlalchemy.schema import AddConstraint, CreateTable, DropConstraint
 
 from pipeline.errors import BadInputError
-from pipeline.files import write_atomic
+from pipeline.files import PRIVATE_FILE_MODE, write_atomic
 from pipeline.worklist import (ACTIVE_STATUSES, ITEM_COLUMNS, STATUS_CLOSED, STATUS_EXPLAINED,
                                STATUS_REOPENED, STATUSES, TIMESTAMP_COLUMNS, apply_reopen_rule,
                                empty_items, normalise_items)
@@ -76,6 +85,11 @@ REVIEW_CSV_REQUIRED = ("item_id", "reviewed_at", "reviewer_role", "outcome")
 REVIEW_CSV_OPTIONAL = ("note",)
 
 WILSON_CONFIDENCE = 0.95
+# SQLite: how long a statement waits for another connection's lock (a nightly upsert) before
+# giving up with StoreLockedError. Read at each open_store call, so tests can shorten it.
+SQLITE_BUSY_TIMEOUT_S = 60.0
+STORE_BACKENDS = ("sqlite", "postgresql")   # the dialects upsert_items has an insert for
+STORE_URL_FORM = "sqlite:///PATH or postgresql+psycopg://USER@HOST/DATABASE"
 CHUNK = 2000   # ids per IN (...) list; well under SQLite's bound-parameter limit
 # Compared to decide whether an incoming item changed (run_id, rank, last_updated_at and
 # first_flagged_at are bookkeeping: a rerun that changes only those leaves the row alone).
@@ -168,6 +182,18 @@ class StoreSchemaError(BadInputError):
     and versions, never row values)."""
 
 
+class StoreUrlError(BadInputError):
+    """The store URL cannot be used: not a URL, another kind of database, a driver that is not
+    installed, a SQLite folder or file that does not exist. The message names the scheme, the
+    driver or the file, never the rest of the URL (it may hold a password)."""
+
+
+class StoreLockedError(BadInputError):
+    """Another process kept the SQLite store locked for longer than the busy timeout. Unlike most
+    bad input, the same command can succeed later, once that process has finished: the CLI says
+    so in its one line (exit 2)."""
+
+
 # ---------------------------------------------------------------------------------------------
 # Engine and reading
 # ---------------------------------------------------------------------------------------------
@@ -176,19 +202,114 @@ def sqlite_url(out) -> str:
     return f"sqlite:///{(Path(out) / 'worklist.sqlite').resolve()}"
 
 
-def open_store(url: str) -> Engine:
-    """Engine for `url`, with the tables created if absent (the SQLite folder too) and an older
-    store upgraded to SCHEMA_VERSION (see _upgrade). A store already at SCHEMA_VERSION is only
-    read: one look at cardiosieve_schema."""
-    if url.startswith("sqlite:///") and url != "sqlite:///:memory:":
-        Path(url[len("sqlite:///"):]).parent.mkdir(parents=True, exist_ok=True)
-    # SQLite: a writer waits up to a minute for another's write lock (a nightly upsert) rather
-    # than failing at once.
-    engine = create_engine(url, connect_args={"timeout": 60}) if url.startswith("sqlite") else create_engine(url)
+def _sqlite_file(url: URL) -> Path | None:
+    """The file of a SQLite URL; None for an in-memory database or a URI filename (?uri=true,
+    which SQLite itself interprets)."""
+    if url.get_backend_name() != "sqlite" or url.database in (None, "", ":memory:"):
+        return None
+    if str(url.query.get("uri", "")).lower() in ("1", "true", "yes", "on"):
+        return None
+    return Path(url.database)
+
+
+def check_store_url(url, *, must_exist: bool = False) -> None:
+    """Raise StoreUrlError unless open_store can use `url`: a SQLAlchemy URL of SQLite or
+    PostgreSQL whose driver is installed and synchronous; for a SQLite file, its folder must
+    exist (a typo in --db must not make a store somewhere new), and with `must_exist` the file
+    too (a command that only uses a store must not create an empty one). Connects to nothing:
+    run it before anything else is done. Messages name the scheme, the driver or the file."""
+    text = str(url)
+    scheme = text.split(":", 1)[0] if ":" in text else ""
+    try:
+        parsed = make_url(text)
+        backend = parsed.get_backend_name()
+    except (ArgumentError, NoSuchModuleError, ValueError):
+        given = f"scheme {scheme!r}" if scheme else "no scheme"
+        raise StoreUrlError(f"database URL: cannot read it ({given}); expected {STORE_URL_FORM}") from None
+    if backend not in STORE_BACKENDS:
+        raise StoreUrlError(f"database URL: unsupported scheme {parsed.drivername!r} "
+                            f"(cardiosieve stores its worklist in {' or '.join(STORE_BACKENDS)}); "
+                            f"expected {STORE_URL_FORM}")
+    try:
+        dialect = parsed.get_dialect()
+        dialect.import_dbapi()
+    except NoSuchModuleError:
+        raise StoreUrlError(f"database URL: unknown driver in scheme {parsed.drivername!r}; "
+                            f"expected {STORE_URL_FORM}") from None
+    except ImportError:
+        raise StoreUrlError(f"database URL: the driver of scheme {parsed.drivername!r} is not "
+                            f"installed; expected {STORE_URL_FORM}") from None
+    if getattr(dialect, "is_async", False):
+        raise StoreUrlError(f"database URL: scheme {parsed.drivername!r} is an asynchronous driver; "
+                            f"expected {STORE_URL_FORM}")
+    path = _sqlite_file(parsed)
+    if path is None:
+        return
+    folder = path.parent
+    if not folder.is_dir():
+        raise StoreUrlError(f"the folder {folder} of the worklist database does not exist "
+                            f"(create it, or check the path)")
+    if must_exist and not path.exists():
+        raise StoreUrlError(f"no worklist database at {path}")
+
+
+def _create_private_file(path: Path) -> None:
+    """An empty file, owner-only whatever the umask (an empty file is an empty SQLite database:
+    SQLite keeps the mode it finds, and gives its journal and WAL files the same)."""
+    try:
+        fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, PRIVATE_FILE_MODE)
+    except FileExistsError:   # another process made it meanwhile: it is theirs, as it was made
+        return
+    try:
+        os.fchmod(fd, PRIVATE_FILE_MODE)
+    finally:
+        os.close(fd)
+
+
+def _translate_errors(busy_timeout_s: float):
+    """An engine's handle_error hook: driver errors a person can act on become one-line
+    BadInputErrors instead of a traceback (the CLI exits 2)."""
+    def hook(context) -> None:
+        exc = context.original_exception
+        code = getattr(exc, "sqlite_errorcode", None)
+        if isinstance(exc, sqlite3.OperationalError) and (
+                (code is not None and code & 0xFF == sqlite3.SQLITE_BUSY) or "database is locked" in str(exc)):
+            raise StoreLockedError(f"the database is locked by another process (waited {busy_timeout_s:g} s); "
+                                   f"try again when it has finished") from exc
+        if isinstance(exc, sqlite3.DatabaseError) and code is not None and code & 0xFF == sqlite3.SQLITE_NOTADB:
+            name = context.engine.url.database if context.engine is not None else "the file given"
+            raise StoreUrlError(f"{name} is not a SQLite database") from exc
+    return hook
+
+
+def open_store(url: str, create: bool = True, busy_timeout_s: float | None = None) -> Engine:
+    """Engine for `url` (checked first, see check_store_url), with the tables created if absent
+    and an older store upgraded to SCHEMA_VERSION (see _upgrade). A store already at
+    SCHEMA_VERSION is only read: one look at cardiosieve_schema.
+
+    create: make the store if there is none (a new SQLite file is owner-only); False for the
+    commands that only use a store: no file, or a database without the store's tables, is then
+    a StoreUrlError. busy_timeout_s: SQLite's wait for another connection's lock (default
+    SQLITE_BUSY_TIMEOUT_S), after which a statement raises StoreLockedError."""
+    check_store_url(url, must_exist=not create)
+    parsed = make_url(url)
+    path = _sqlite_file(parsed)
+    if create and path is not None and not path.exists():
+        _create_private_file(path)
+    busy = SQLITE_BUSY_TIMEOUT_S if busy_timeout_s is None else float(busy_timeout_s)
+    if parsed.get_backend_name() == "sqlite":
+        # A writer waits for another's write lock (a nightly upsert) rather than failing at once.
+        engine = create_engine(parsed, connect_args={"timeout": busy})
+    else:
+        engine = create_engine(parsed)
+    event.listen(engine, "handle_error", _translate_errors(busy))
     try:
         with engine.connect() as conn:
-            current = _stored_version(conn) == SCHEMA_VERSION
-        if not current:
+            stored = _stored_version(conn)
+        if stored is None and not create:
+            where = path if path is not None else "the database given"
+            raise StoreUrlError(f"no worklist store in {where} (it has none of cardiosieve's tables)")
+        if stored != SCHEMA_VERSION:
             with _schema_transaction(engine) as conn:
                 _upgrade(conn)
     except BaseException:
@@ -669,20 +790,25 @@ def yield_table(engine: Engine, since=None) -> pd.DataFrame:
 # Export
 # ---------------------------------------------------------------------------------------------
 _FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+# Spreadsheets may drop leading blanks before they read a cell, so " =1+1" or "\n@SUM(A1)" are
+# formulas too (OWASP, CSV injection).
+_BLANKS_THEN_FORMULA = r"[ \t\r\n]+[=+\-@]"
 
 
 def _spreadsheet_safe(s: pd.Series) -> pd.Series:
-    """Prefix text a spreadsheet would run as a formula with a quote (CSV injection)."""
+    """Prefix text a spreadsheet would run as a formula with a quote (CSV injection): text that
+    starts with a formula character, a tab or a carriage return, or with blanks and then a
+    formula character."""
     text = s.astype("str")
-    risky = text.str.startswith(_FORMULA_START, na=False)
+    risky = text.str.startswith(_FORMULA_START, na=False) | text.str.match(_BLANKS_THEN_FORMULA, na=False)
     return text.mask(risky, "'" + text)
 
 
 def export_items(engine: Engine, fmt: str = "csv", dest=None) -> int:
     """Write all stored items in rank order to `dest` (a path, or a text stream such as
     sys.stdout) as CSV for spreadsheets, the screening caution in a last column `caution` of
-    every row (a spreadsheet loses file-level notes; a row copied elsewhere keeps it). Returns
-    the number of rows."""
+    every row (a spreadsheet loses file-level notes; a row copied elsewhere keeps it). A file is
+    published whole and owner-only (pipeline.files.write_atomic). Returns the number of rows."""
     from pipeline import CAUTION
 
     if fmt != "csv":

@@ -17,9 +17,12 @@ import pandas as pd
 
 from pipeline import contract as c
 from pipeline.config import load_settings
-from pipeline.files import write_parquet_atomic
+from pipeline.files import private_dir, write_parquet_atomic
 from pipeline.load import read_table
 from pipeline.run import _reasons, interval
+
+# Its own name: OUT/rejects.parquet of a run's folder is a link into the published run (pipeline/publish.py).
+VALIDATION_REJECTS = "validation_rejects.parquet"
 
 
 def validate_lake(lake, config=None, start=None, end=None, out=None) -> dict:
@@ -39,8 +42,8 @@ def validate_lake(lake, config=None, start=None, end=None, out=None) -> dict:
               "tables": tables, "rejects_by_reason": _reasons(all_rejects),
               "misnamed_partitions": _misnamed_partitions(lake, all_rejects)}
     if out:
-        Path(out).mkdir(parents=True, exist_ok=True)
-        result["rejects_path"] = str(write_parquet_atomic(all_rejects, Path(out) / "rejects.parquet"))
+        private_dir(Path(out))
+        result["rejects_path"] = str(write_parquet_atomic(all_rejects, Path(out) / VALIDATION_REJECTS))
     return result
 
 

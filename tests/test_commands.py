@@ -9,6 +9,7 @@ import pandas as pd
 import pytest
 
 from pipeline import commands
+from pipeline.cli import EXIT_PARTIAL
 from pipeline.store import OUTCOMES, open_store, read_items, sqlite_url, upsert_items
 from pipeline.files import write_parquet_atomic
 from pipeline.worklist import build_items
@@ -76,10 +77,10 @@ def test_show_prints_the_caution_and_the_ranked_head(out, capsys):
     assert lines[-1].startswith("2 of 3 items shown")
 
 
-def test_show_from_the_database_gives_the_same_rows_as_from_the_parquet(out, capsys):
-    _, from_file, _ = run(capsys, "show", "--out", out)
+def test_show_with_out_and_with_db_give_the_same_rows(out, capsys):
+    _, from_out, _ = run(capsys, "show", "--out", out)
     _, from_db, _ = run(capsys, "show", "--db", sqlite_url(out))
-    assert from_file == from_db
+    assert from_out == from_db
 
 
 def test_show_without_a_worklist_says_so(tmp_path, capsys):
@@ -87,15 +88,25 @@ def test_show_without_a_worklist_says_so(tmp_path, capsys):
     assert code == 2 and "no worklist" in err
 
 
-def test_review_closes_the_item_and_show_hides_it(out, capsys):
+@pytest.mark.parametrize("where", ["--out", "--db"])
+def test_review_closes_the_item_and_show_hides_it(out, capsys, where):
+    # show reads the store, where reviews land, not OUT/worklist.parquet (the night's copy, which
+    # still says open until the next run).
+    store_at = out if where == "--out" else sqlite_url(out)
     top = read_items(open_store(sqlite_url(out))).iloc[0]["item_id"]
     code, text, _ = run(capsys, "review", top, "--outcome", "finding_real", "--role", "registrar",
                         "--at", "2026-03-02T09:00:00Z", "--out", out)
     assert code == 0 and "item closed" in text and "pat-" not in text
-    _, shown, _ = run(capsys, "show", "--db", sqlite_url(out))   # OUT/worklist.parquet is the night's copy
-    assert "pat-A" not in shown
-    _, shown_all, _ = run(capsys, "show", "--db", sqlite_url(out), "--include-closed")
+    _, shown, _ = run(capsys, "show", where, store_at)
+    assert "pat-A" not in shown and shown.splitlines()[-1].startswith("2 of 2 items shown (3 stored")
+    _, shown_all, _ = run(capsys, "show", where, store_at, "--include-closed")
     assert "pat-A" in shown_all and "closed" in shown_all
+
+
+def test_show_with_out_needs_no_worklist_parquet(out, capsys):
+    (out / "worklist.parquet").unlink()
+    code, text, _ = run(capsys, "show", "--out", out)
+    assert code == 0 and text.splitlines()[-1].startswith("3 of 3 items shown")
 
 
 def test_review_help_names_only_the_new_outcomes(capsys):
@@ -121,15 +132,24 @@ def test_review_with_unknown_outcome_fails_with_exit_2(out, capsys):
     assert code == 2 and "unknown_outcome" in err
 
 
-def test_review_import_reports_rejects_by_line_and_exits_1(out, capsys, tmp_path):
+def test_review_import_reports_rejects_by_line_and_exits_3(out, capsys, tmp_path):
+    # 3 (EXIT_PARTIAL): some lines rejected, the rest imported; 1 would read as an internal error.
     top = read_items(open_store(sqlite_url(out))).iloc[0]["item_id"]
     csv = tmp_path / "staff.csv"
     csv.write_text(f"item_id,reviewed_at,reviewer_role,outcome\n{top},2026-03-02T09:00:00Z,nurse,finding_real\n"
                    f"{top},2026-03-02T10:00:00Z,nurse,maybe\n")
     code, text, _ = run(capsys, "review", "--import-csv", csv, "--out", out)
-    assert code == 1
+    assert code == EXIT_PARTIAL == 3
     assert "imported 1" in text and "rejected 1" in text
     assert "rejected line 3: outcome: unknown_outcome" in text
+
+
+def test_review_import_without_rejects_exits_0(out, capsys, tmp_path):
+    top = read_items(open_store(sqlite_url(out))).iloc[0]["item_id"]
+    csv = tmp_path / "staff.csv"
+    csv.write_text(f"item_id,reviewed_at,reviewer_role,outcome\n{top},2026-03-02T09:00:00Z,nurse,finding_real\n")
+    code, text, _ = run(capsys, "review", "--import-csv", csv, "--out", out)
+    assert code == 0 and "imported 1" in text and "rejected 0" in text
 
 
 def test_yield_prints_a_table_per_screen_and_tier(out, capsys):

@@ -1,12 +1,13 @@
-"""Publishing files (pipeline/files.py): the target is replaced whole or not at all, and no
-temporary file is left behind."""
+"""Publishing files (pipeline/files.py): the target is replaced whole or not at all, no
+temporary file is left behind, and files and the folders made for them are owner-only."""
 import json
 import os
 
 import pandas as pd
 import pytest
 
-from pipeline.files import write_json_atomic, write_parquet_atomic, write_text_atomic
+from pipeline.files import private_dir, write_atomic, write_json_atomic, write_parquet_atomic, write_text_atomic
+from tests.modes import any_umask, mode  # noqa: F401 (any_umask is a fixture)
 
 
 def test_atomic_write_replaces_the_file(tmp_path):
@@ -49,9 +50,40 @@ def test_json_summary_has_sorted_keys_and_text_for_other_values(tmp_path):
     assert json.loads(text) == {"a": "2026-11-29 00:00:00+00:00", "b": 1}
 
 
-def test_published_file_gets_the_umask_mode_like_an_ordinary_open(tmp_path):
-    # mkstemp would give 0600; a published file is read by other tools, as open() would allow.
-    plain = tmp_path / "plain.txt"
-    plain.write_text("x", encoding="utf-8")
-    published = write_text_atomic("x", tmp_path / "published.txt")
-    assert published.stat().st_mode & 0o777 == plain.stat().st_mode & 0o777
+def test_published_file_is_owner_only_whatever_the_umask(tmp_path, any_umask):
+    # Published files name patients: 0600 even where the umask would give 0666 or 0644.
+    text = write_text_atomic("x", tmp_path / "published.txt")
+    table = write_parquet_atomic(pd.DataFrame({"a": [1]}), tmp_path / "worklist.parquet")
+    assert mode(text) == mode(table) == 0o600
+
+
+def test_a_writer_that_replaces_the_temporary_file_still_publishes_owner_only(tmp_path, any_umask):
+    def recreate(tmp):                       # some writers unlink and create their file anew
+        tmp.unlink()
+        tmp.write_text("x", encoding="utf-8")
+    assert mode(write_atomic(tmp_path / "out.txt", recreate)) == 0o600
+
+
+def test_private_dir_makes_each_new_folder_owner_only_and_leaves_the_folders_above(tmp_path, any_umask):
+    shared = tmp_path / "shared"
+    shared.mkdir()
+    os.chmod(shared, 0o755)                  # like /tmp or a shared mount: not ours to change
+    leaf = shared / "out" / "_stage" / "20261129T000000Z_20261130T000000Z"
+    assert private_dir(leaf) == leaf and leaf.is_dir()
+    assert [mode(p) for p in (shared / "out", shared / "out" / "_stage", leaf)] == [0o700] * 3
+    assert mode(shared) == 0o755
+
+
+def test_private_dir_tightens_an_existing_folder_of_ours(tmp_path, any_umask):
+    out = tmp_path / "out"
+    out.mkdir()
+    os.chmod(out, 0o755)
+    (out / "kept.txt").write_text("x", encoding="utf-8")
+    assert private_dir(out) == out and mode(out) == 0o700
+    assert private_dir(out) == out and (out / "kept.txt").exists()   # again: nothing else changes
+
+
+def test_private_dir_refuses_a_file_in_its_place(tmp_path):
+    (tmp_path / "out").write_text("x", encoding="utf-8")
+    with pytest.raises(FileExistsError):
+        private_dir(tmp_path / "out")

@@ -42,7 +42,7 @@ def test_validate_counts_every_row_of_a_misnamed_partition_folder(tmp_path, fold
     assert got["misnamed_partitions"] == {f"ecg/{folder}": 2, f"ecg_lead/{folder}": 12}
     assert got["rejects_by_reason"] == {"ecg:bad_partition_name": 2, "ecg_lead:bad_partition_name": 12}
     assert got["tables"]["ecg"] | {"files": 0} == {"rows_in": 3, "accepted": 1, "rejected": 2, "files": 0}
-    rejects = pd.read_parquet(tmp_path / "v" / "rejects.parquet")
+    rejects = pd.read_parquet(tmp_path / "v" / "validation_rejects.parquet")
     assert sorted(rejects.loc[rejects["table"] == "ecg", "row_key"]) == ["lost-1", "lost-2"]
     # Reported whatever interval is asked for: the folder has no date to place it by.
     elsewhere = validate_lake(lake, start="2020-01-01", end="2020-01-02")

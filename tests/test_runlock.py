@@ -12,6 +12,7 @@ import pytest
 from pipeline.cli import main
 from pipeline.runlock import LOCK_NAME, PG_LOCK_KEY
 from tests.lake_builders import ecg_row, lab_row, patient_row, write_lake
+from tests.modes import any_umask, mode  # noqa: F401 (any_umask is a fixture)
 
 ARGS = ["--start", "2026-11-29", "--end", "2026-11-30"]
 PG_URL = os.environ.get("CARDIOSIEVE_TEST_PG_URL")
@@ -34,6 +35,14 @@ def test_a_second_run_on_a_locked_out_exits_2_with_one_line_and_writes_nothing(t
     # Released: the next run goes through, and so does a rerun (the lock goes with the run).
     assert main(["run", "--lake", str(lake), "--out", str(out), *ARGS]) == 0
     assert main(["run", "--lake", str(lake), "--out", str(out), *ARGS]) == 0
+
+
+def test_the_lock_files_are_owner_only_whatever_the_umask(tmp_path, any_umask):
+    lake, db = _lake(tmp_path), tmp_path / "store" / "worklist.sqlite"
+    out = tmp_path / "out"
+    db.parent.mkdir()
+    assert main(["run", "--lake", str(lake), "--out", str(out), "--db", f"sqlite:///{db}", *ARGS]) == 0
+    assert mode(out / LOCK_NAME) == 0o600 and mode(f"{db}.lock") == 0o600
 
 
 def test_two_runs_on_one_sqlite_store_from_different_outs_are_serialised_by_its_lock(tmp_path, capsys):

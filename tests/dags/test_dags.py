@@ -216,11 +216,11 @@ def test_failed_quality_gate_writes_the_report_and_publishes_nothing(nightly, tm
     assert got["validate_contract"] == "success" and got["quality_gate"] == "failed"
     assert got["publish_worklist"] == "upstream_failed" and tries(dr)["quality_gate"] == 1
     assert not (out / "worklist.parquet").exists() and not (out / "worklist.sqlite").exists()
-    report = json.loads((out / "quality.json").read_text())
+    report = json.loads((out / "gate_stopped" / "quality.json").read_text())
     assert report["passed"] is False and any("qt_ms" in m for m in report["critical_failures"])
     line = next(x for x in text.splitlines() if "QualityGateError: quality gate stopped the run" in x)
     assert "ecg" in line and "qt_ms" in line
-    assert leaked(text + (out / "quality.html").read_text(), patient_ids()) == []
+    assert leaked(text + (out / "gate_stopped" / "quality.html").read_text(), patient_ids()) == []
 
 
 def test_exports_that_never_landed_fail_the_landing_check_by_name(nightly, tmp_path, capfd, caplog):
@@ -323,6 +323,27 @@ def test_bad_data_fails_without_retry_and_a_system_io_error_is_left_to_retry(tmp
     with pytest.raises(OSError) as caught:
         m.call_stage(mount_away)
     assert not isinstance(caught.value, AirflowFailException) and caught.value.errno == errno.EIO
+
+
+def test_a_stage_waits_for_a_command_line_run_holding_out_by_retrying(tmp_path):
+    """A task holds the run lock of OUT and the store for its stage; held by another run, the
+    task fails with StoreBusy, which Airflow retries with back-off (not AirflowFailException)."""
+    import fcntl
+
+    from airflow.sdk.exceptions import AirflowFailException
+
+    from pipeline.runlock import LOCK_NAME
+
+    m = load_dag_module()
+    out = tmp_path / "out"
+    out.mkdir()
+    ran = []
+    with open(out / LOCK_NAME, "a+") as held:
+        fcntl.flock(held.fileno(), fcntl.LOCK_EX)
+        with pytest.raises(m.StoreBusy, match="another cardiosieve run holds") as caught:
+            m.call_stage(ran.append, "stage", lock=(str(out), None))
+        assert not isinstance(caught.value, AirflowFailException) and ran == []
+    assert m.call_stage(ran.append, "stage", lock=(str(out), None)) is None and ran == ["stage"]
 
 
 def test_every_bad_input_error_fails_without_retry():
