@@ -11,13 +11,31 @@ ROOT = Path(__file__).resolve().parents[1]
 PY = sys.executable
 
 
+LEAD_OUT_DAYS = 7   # generated past the lake's end, then cut: see ensure_lake
+
+
 def ensure_lake(path: Path, patients: int, days: int, end: str = "2026-11-30") -> str:
-    """Generate an invented lake once (kept under /tmp between runs); returns its site config."""
+    """Generate an invented lake once (kept under /tmp between runs); returns its site config.
+
+    The generator makes labs around ECGs (before them, and repeats over the following days), so
+    the labs of its last days taper off: on a 1-year lake the last night holds 25 % fewer lab
+    rows than a month earlier, and the quality gate's lab-volume check rightly stops that night
+    as a missing feed. A real lake's last night is complete, so the lake is generated
+    LEAD_OUT_DAYS past `end` and the partitions from `end` on are removed."""
+    import shutil
+
+    import pandas as pd
+
     path = Path(path)
     if not (path / "ecg").is_dir():
         t = time.perf_counter()
+        gen_end = (pd.Timestamp(end) + pd.Timedelta(days=LEAD_OUT_DAYS)).strftime("%Y-%m-%d")
         subprocess.run([PY, "-m", "pipeline.samplegen", "--out", str(path), "--patients", str(patients),
-                        "--days", str(days), "--end", end], check=True, cwd=ROOT, stdout=subprocess.DEVNULL)
+                        "--days", str(days + LEAD_OUT_DAYS), "--end", gen_end], check=True, cwd=ROOT,
+                       stdout=subprocess.DEVNULL)
+        for folder in path.glob("*/date=*"):
+            if folder.name[len("date="):] >= end:
+                shutil.rmtree(folder)
         print(f"  generated {path} ({patients} patients, {days} days) in {time.perf_counter() - t:.0f} s")
     return str(path / "site.toml")
 

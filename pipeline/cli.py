@@ -95,8 +95,10 @@ def main(argv: list[str] | None = None) -> int:
 
 
 def _cmd_run(args) -> int:
-    from pipeline.run import run_interval
-    summary = run_interval(args.lake, args.out, args.start, args.end, config=args.config, db=args.db)
+    from pipeline.gateworker import GateWorker
+    with GateWorker(args.config) as gate:      # first: Great Expectations imports while this process goes on
+        from pipeline.run import run_interval
+        summary = run_interval(args.lake, args.out, args.start, args.end, config=args.config, db=args.db, gate=gate)
     print(format_summary(summary))
     return EXIT_OK
 

@@ -5,7 +5,9 @@ point, in which case the process sends itself SIGKILL there: no clean-up, no `fi
 power cut or an out-of-memory kill would leave it. tests/test_faults.py runs `cardiosieve run`
 in a subprocess with each point in turn. The points, in the order a run passes them:
 
-    after_load, after_quality, after_align, after_screen   a stage's files are written
+    after_load, after_align, after_screen   a stage's files are written
+    after_quality      the quality gate's verdict has come back (its worker runs beside the
+                       stages above: pipeline/gateworker.py)
     after_commit       the worklist store has committed tonight's items
     before_switch      the run's folder is complete, not yet the published one
     after_switch       the new state is published, the old runs not yet pruned
@@ -15,7 +17,7 @@ from __future__ import annotations
 import os
 import signal
 
-POINTS = ("after_load", "after_quality", "after_align", "after_screen", "after_commit", "before_switch",
+POINTS = ("after_load", "after_align", "after_screen", "after_quality", "after_commit", "before_switch",
           "after_switch")
 ENV = "CARDIOSIEVE_KILL_AT"
 

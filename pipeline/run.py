@@ -275,22 +275,64 @@ def trailing_counts(lake, lo: pd.Timestamp, hi: pd.Timestamp, nights: int = 28) 
 
 
 def stage_quality(lake, out, start, end, config=None, settings: Settings | None = None) -> dict:
-    """The data-quality gate over the loaded night (pipeline/quality.py, Great Expectations).
+    """The data-quality gate over the loaded night (pipeline/quality.py), in this process: the
+    row checks and Great Expectations' verdict together (the Airflow task; `run_interval` splits
+    them, see pipeline/gateworker.py).
 
     Writes quality.json and quality.html to the stage folder (published with the run), moves
     failing rows to the rejects, and raises QualityGateError on a critical failure: nothing is
     published then, and the report is also written to OUT/gate_stopped/ for the operator."""
-    from pipeline.publish import GATE_STOPPED
-    from pipeline.quality import QualityGateError, enforce, run_quality, write_report
-
     settings = settings or load_settings(config)
     lo, hi = interval(start, end)
     d = stage_dir(out, lo, hi)
+    result = _quality_result(lake, d, lo, hi, settings, verdict=True)
+    summary = _report_or_stop(out, d, result)
+    _write_checked(d, result)
+    return summary
+
+
+def stage_row_checks(lake, out, start, end, config=None, settings: Settings | None = None) -> dict:
+    """The gate's row decisions only (no Great Expectations): the checked tables and the
+    rejects, for alignment to go on while the verdict is computed elsewhere. Returns whether
+    the row checks alone already fail the gate (the verdict will say why)."""
+    settings = settings or load_settings(config)
+    lo, hi = interval(start, end)
+    d = stage_dir(out, lo, hi)
+    result = _quality_result(lake, d, lo, hi, settings, verdict=False)
+    _write_checked(d, result)
+    return {"passed": result.passed, "rejected": int(len(result.rejects))}
+
+
+def stage_gate_verdict(lake, out, start, end, config=None, settings: Settings | None = None) -> dict:
+    """The gate's verdict on the loaded chunk: Great Expectations' evaluation compared with the
+    row checks, the feed and volume checks, the report; QualityGateError on a critical failure.
+    Writes the report only (stage_row_checks wrote the tables)."""
+    settings = settings or load_settings(config)
+    lo, hi = interval(start, end)
+    d = stage_dir(out, lo, hi)
+    return _report_or_stop(out, d, _quality_result(lake, d, lo, hi, settings, verdict=True))
+
+
+def _quality_result(lake, d: Path, lo, hi, settings: Settings, verdict: bool):
+    """run_quality over the stage's loaded tables; with `verdict`, Great Expectations too and the
+    lake's trailing counts for the volume and feed checks."""
+    from pipeline.quality import BOTH, OWN, run_quality
+
     tables = {n: pd.read_parquet(d / f"{n}.parquet") for n in CHECKED_TABLES if (d / f"{n}.parquet").exists()}
-    load_rejects = pd.read_parquet(d / "rejects.parquet")
+    if not verdict:
+        return run_quality(tables, hi, settings=settings, evaluator=OWN)
+    load_rejects = pd.read_parquet(d / "rejects.parquet", columns=["table", "scope"])
     tonight = {"ecg": len(tables["ecg"]) + int(((load_rejects["table"] == "ecg") & (load_rejects["scope"] == "night")).sum())}
-    result = run_quality(tables, hi, trailing_counts=trailing_counts(lake, lo, hi), settings=settings,
-                         tonight_counts=tonight, lab_volume=lab_volume(lake, lo, hi))
+    return run_quality(tables, hi, trailing_counts=trailing_counts(lake, lo, hi), settings=settings,
+                       tonight_counts=tonight, lab_volume=lab_volume(lake, lo, hi), evaluator=BOTH)
+
+
+def _report_or_stop(out, d: Path, result) -> dict:
+    """Write the report to the stage folder; on a critical failure also to OUT/gate_stopped/
+    and raise QualityGateError naming it. Returns the gate's summary (counts only)."""
+    from pipeline.publish import GATE_STOPPED
+    from pipeline.quality import QualityGateError, enforce, write_report
+
     paths = write_report(result, d)
     if not result.passed:
         stopped = write_report(result, private_dir(Path(out) / GATE_STOPPED))
@@ -298,17 +340,19 @@ def stage_quality(lake, out, start, end, config=None, settings: Settings | None 
             enforce(result)
         except QualityGateError as exc:
             raise QualityGateError(exc.failures + [f"report {stopped['html']}"]) from None
+    checks = result.checks
+    return {"checks": int(len(checks)), "failed": int((checks["passed"] == False).sum()),   # noqa: E712
+            "warnings": int(((checks["passed"] == False) & (checks["severity"] == "warning")).sum()),  # noqa: E712
+            "rejected": int(len(result.rejects)), "report": paths.get("html", ""),
+            "rejects_by_check": {k: int(v) for k, v in result.rejects.groupby("reason").size().items()}}
+
+
+def _write_checked(d: Path, result) -> None:
+    """The tables the gate let through and its rejects, for alignment (nothing when it failed)."""
     if result.passed:
         for n, df in result.clean.items():
             write_parquet_atomic(df, d / f"{n}.checked.parquet")
         write_parquet_atomic(result.rejects, d / "rejects_quality.parquet")
-    checks = result.checks
-    summary = {"checks": int(len(checks)), "failed": int((checks["passed"] == False).sum()),   # noqa: E712
-               "warnings": int(((checks["passed"] == False) & (checks["severity"] == "warning")).sum()),  # noqa: E712
-               "rejected": int(len(result.rejects)), "report": paths.get("html", ""),
-               "rejects_by_check": {k: int(v) for k, v in result.rejects.groupby("reason").size().items()}}
-    enforce(result)
-    return summary
 
 
 def site_rules(settings: Settings):
@@ -388,11 +432,15 @@ CHUNK_DAYS = 31   # a long backfill runs in chunks of at most this many days: me
 
 
 def run_interval(lake, out, start, end, config=None, db=None, quality: bool = True,
-                 chunk_days: float = CHUNK_DAYS) -> dict:
+                 chunk_days: float = CHUNK_DAYS, gate=None) -> dict:
     """The whole job for ECGs acquired in [start, end); returns the run summary (counts and
     seconds per stage only) and writes it to OUT/run_summary.json beside the worklist, the
     aligned table and the rejects. An interval longer than `chunk_days` runs chunk by chunk,
-    in time order, so that the worklist folds episodes exactly as nightly runs would."""
+    in time order, so that the worklist folds episodes exactly as nightly runs would.
+
+    With the quality gate on, its verdict comes from a worker process (pipeline/gateworker.py):
+    `gate`, one the caller started as early as it could (the CLI does, before importing this
+    module), else one started here."""
     from pipeline.publish import clean_leftovers
     from pipeline.runlock import run_lock
     from pipeline.store import check_store_url, sqlite_url
@@ -406,10 +454,21 @@ def run_interval(lake, out, start, end, config=None, db=None, quality: bool = Tr
     while bounds[-1] + step < hi:
         bounds.append(bounds[-1] + step)
     bounds.append(hi)
-    with run_lock(out, db or sqlite_url(out)):    # one run at a time per OUT and store
+    with run_lock(out, db or sqlite_url(out)), _gate(quality, config, gate) as gate:   # one run per OUT and store
         clean_leftovers(out)                      # what a crashed run left behind
-        parts = [_run_chunk(lake, out, a, b, settings, db, quality) for a, b in zip(bounds[:-1], bounds[1:])]
+        parts = [_run_chunk(lake, out, a, b, settings, db, gate) for a, b in zip(bounds[:-1], bounds[1:])]
         return stage_finish(out, lo, hi, _add_up(parts) | {"chunks": len(parts)}, settings, bounds)
+
+
+def _gate(quality: bool, config, gate=None):
+    """The quality gate's worker (pipeline/gateworker.py): the caller's, else one started now so
+    that Great Expectations is imported while the run loads; none when the gate is off."""
+    from contextlib import nullcontext
+
+    from pipeline.gateworker import GateWorker
+    if not quality:
+        return nullcontext()
+    return nullcontext(gate) if gate is not None else GateWorker(config)
 
 
 def usable_out(out) -> Path:
@@ -499,7 +558,10 @@ def _link_or_copy(src: Path, dst: Path) -> None:
         shutil.copyfile(src, dst)
 
 
-def _run_chunk(lake, out, lo, hi, settings: Settings, db, quality: bool) -> dict:
+def _run_chunk(lake, out, lo, hi, settings: Settings, db, gate) -> dict:
+    """One chunk through every stage. With a `gate` (pipeline/gateworker.py) the row checks run
+    here and the verdict in the worker, awaited before the worklist stage: nothing reaches the
+    store or the outputs unless the gate passed."""
     seconds = {}
 
     def timed(name, fn, *args, **kw):
@@ -511,14 +573,20 @@ def _run_chunk(lake, out, lo, hi, settings: Settings, db, quality: bool) -> dict
     loaded = timed("load", stage_load, lake, out, lo, hi, settings=settings)
     fault_point("after_load")
     summary = {"tables": loaded["tables"]}
-    if quality:
-        summary["quality"] = timed("quality", stage_quality, lake, out, lo, hi, settings=settings)
-        fault_point("after_quality")
+    if gate is not None:
+        gate.submit(lake, out, lo, hi)
+        rows = timed("quality", stage_row_checks, lake, out, lo, hi, settings=settings)
+        if not rows["passed"]:
+            gate.result()                  # raises QualityGateError with the verdict's report
+            raise RuntimeError("the quality gate's row checks failed but its verdict passed")
     summary["aligned"] = timed("align", stage_align, out, lo, hi, settings=settings, lake=lake)
     fault_point("after_align")
     summary["tables"]["ecg"]["screened"] = summary["aligned"]["aligned"]
     summary["findings"] = timed("screen", stage_screen, out, lo, hi, settings=settings)["by_screen_tier"]
     fault_point("after_screen")
+    if gate is not None:
+        summary["quality"] = timed("quality_wait", gate.result)
+        fault_point("after_quality")
     summary["worklist"] = timed("worklist", stage_worklist, out, lo, hi, db=db, settings=settings)
     summary["seconds"] = seconds
     return summary

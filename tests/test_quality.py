@@ -575,3 +575,67 @@ def test_a_lab_feed_far_under_its_recent_volume_stops_the_run(tmp_path, capsys):
 
 def test_a_lab_feed_at_its_usual_volume_passes(tmp_path):
     assert _run(tmp_path, _volume_lake(tmp_path, 190)) == 0
+
+
+# -- the run's own row checks against Great Expectations --------------------------------------
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_the_row_checks_fail_exactly_the_rows_great_expectations_fails(seed):
+    """own_counts (numpy, what the run acts on) and Great Expectations (the reference library)
+    evaluate every catalogue expectation on random tables with missing values, duplicates,
+    values on the range edges and rows outside a row condition: same rows checked, same failing
+    positions, check by check."""
+    rng = np.random.default_rng(seed)
+    n = 400
+
+    def maybe_missing(values, frac=0.1):
+        s = pd.Series(values)
+        s[rng.random(len(s)) < frac] = None
+        return s
+
+    ecg = ecg_frame(n)
+    ecg["ecg_id"] = _str(maybe_missing(rng.choice([f"E{i}" for i in range(n - 30)], n)))
+    ecg["patient_id"] = _str(maybe_missing(rng.choice(["P1", "P2", "P3"], n)))
+    ecg["acquired_at"] = maybe_missing(rng.choice(
+        _utc([RUN_END + pd.Timedelta(minutes=15), RUN_END + pd.Timedelta(minutes=16), pd.Timestamp("1989-12-31T23:59Z"),
+              pd.Timestamp("1990-01-01T00:00Z"), T_ECG]).to_numpy(), n))
+    ecg["acquired_at"] = pd.to_datetime(ecg["acquired_at"], utc=True).dt.as_unit("us")
+    for col, (lo, hi) in QualitySettings().ecg_ranges.items():
+        ecg[col] = maybe_missing(rng.choice([lo - 1, lo, (lo + hi) / 2, hi, hi + 0.5], n)).astype("float64")
+    leads = lead_frame([f"E{i}" for i in range(n // 12)])
+    leads["lead"] = _str(maybe_missing(rng.choice([*c.STANDARD_LEADS, "V4R", "lead?"], len(leads)), 0.05))
+    leads["st_j_uv"] = rng.choice([-2000.0, -1999.0, 0.0, 2000.0, 2001.0, np.nan], len(leads))
+    lab = lab_frame(n)
+    lab["analyte"] = _str(maybe_missing(rng.choice([LOINC_POTASSIUM_SERUM, LOINC_MAGNESIUM_MASS, LOINC_SODIUM], n)))
+    lab["value"] = maybe_missing(rng.choice([1.4, 1.5, 4.0, 10.0, 10.1, 0.19, 3.0], n)).astype("float64")
+    lab["unit"] = _str(maybe_missing(rng.choice(["mmol/L", "mg/dL"], n)))
+    lab["result_id"] = _str(maybe_missing(rng.choice([f"R{i}" for i in range(n - 40)], n)))
+    lab["resulted_at"] = lab["collected_at"] + pd.to_timedelta(rng.choice([-1, 0, 1], n), unit="min")
+    lab.loc[rng.random(n) < 0.1, "resulted_at"] = pd.NaT
+    tables = {"ecg": ecg, "ecg_lead": leads, "lab": lab}
+    catalogue = build_checks(QualitySettings(), RUN_END)
+    ctx = ge_context()
+    from pipeline.quality import _validate, own_counts
+    compared = 0
+    for table, df in tables.items():
+        checks = [k for k in catalogue[table] if k.expectation != "pandas"]
+        ours = own_counts(table, df.reset_index(drop=True), checks)
+        ge = _validate(ctx, table, df.reset_index(drop=True), checks)
+        for chk in checks:
+            assert ours[chk.name][0] == ge[chk.name][0], chk.name
+            assert ours[chk.name][1].tolist() == ge[chk.name][1].tolist(), chk.name
+            compared += bool(len(ours[chk.name][1]))
+    assert compared >= 15          # most checks had failing rows to compare, not only passes
+
+
+def test_a_disagreement_between_the_evaluators_is_a_critical_failure(monkeypatch):
+    from pipeline import quality
+    real = quality._own_count
+    monkeypatch.setattr(quality, "_own_count", lambda df, chk: (real(df, chk)[0], np.array([], dtype=np.int64))
+                        if chk.name == "ecg_qt_ms_plausible" else real(df, chk))
+    ecg = ecg_frame(100)
+    ecg.loc[3, "qt_ms"] = 900.0
+    result = run_quality({"ecg": ecg}, RUN_END)
+    assert not check(result, "ecg_evaluators_agree")["passed"]
+    assert any("ecg_evaluators_agree" in m and "ecg_qt_ms_plausible" in m for m in result.critical_failures)
+    assert run_quality({"ecg": ecg}, RUN_END, evaluator="own").critical_failures == []
