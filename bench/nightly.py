@@ -22,15 +22,20 @@ from pathlib import Path
 
 from _common import ensure_lake, even_patients, run_json
 
+# As `cardiosieve run` does: the quality gate's worker first (pipeline/gateworker.py), then the job.
 RUN_CODE = """
 import json, resource, sys, time
 t0 = time.perf_counter()
-from pipeline.run import run_interval
 lake, out, start, end, config, quality = sys.argv[1:7]
-s = run_interval(lake, out, start, end, config=config or None, quality=quality == "1")
+from contextlib import nullcontext
+from pipeline.gateworker import GateWorker
+with (GateWorker(config or None) if quality == "1" else nullcontext()) as gate:
+    from pipeline.run import run_interval
+    s = run_interval(lake, out, start, end, config=config or None, quality=quality == "1", gate=gate)
 print(json.dumps({"total_s": time.perf_counter() - t0, "seconds": s["seconds"], "ecgs": s["tables"]["ecg"]["screened"],
                   "findings": sum(sum(t.values()) for t in s["findings"].values()), "chunks": s["chunks"],
-                  "peak_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}))
+                  "peak_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
+                  "worker_peak_mb": resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024}))
 """
 
 # What an analyst would write: nearest potassium in [-24 h, +6 h] by two ASOF joins, the
@@ -91,7 +96,27 @@ def show(label: str, r: dict) -> None:
     stages = ", ".join(f"{k} {v:.2f}" for k, v in r.get("seconds", {}).items())
     extra = f"; stages: {stages}" if stages else ""
     ecgs = f"ECGs {r['ecgs']}, " if "ecgs" in r else ""
-    print(f"{label}: wall {r['wall_s']:.2f} s, peak {r['peak_mb']:.0f} MB, {ecgs}findings {r['findings']}{extra}")
+    worker = f" (gate worker {r['worker_peak_mb']:.0f} MB)" if r.get("worker_peak_mb") else ""
+    print(f"{label}: wall {r['wall_s']:.2f} s, peak {r['peak_mb']:.0f} MB{worker}, {ecgs}findings {r['findings']}{extra}")
+
+
+TARGETS = []     # (what, measured s, SQL s or None, limit, kind): printed together at the end
+
+
+def target(what: str, measured: float, sql: float | None, limit: float, kind: str) -> None:
+    """kind "s": under `limit` seconds; "mb": under `limit` MB; "x": measured / sql at most `limit`."""
+    TARGETS.append((what, measured, sql, limit, kind))
+
+
+def print_targets() -> None:
+    print("\ntargets (this run):")
+    for what, measured, sql, limit, kind in TARGETS:
+        ratio = measured / sql if sql else None
+        met = ratio <= limit if kind == "x" else measured < limit
+        beside = f", SQL {sql:.2f} s, ratio {ratio:.2f}" if sql else ""
+        unit = "MB" if kind == "mb" else "s"
+        goal = f"at most {limit:g}x the SQL" if kind == "x" else f"under {limit:g} {unit}"
+        print(f"  {what}: {measured:.2f} {unit}{beside}; target {goal}: {'met' if met else 'NOT met'}")
 
 
 def race(lake, config, start, end, label) -> None:
@@ -107,6 +132,7 @@ def race(lake, config, start, end, label) -> None:
     show(f"{label}, cardiosieve without quality gate (median of 3)", {**bare[-1], "wall_s": b})
     show(f"{label}, DuckDB SQL (median of 3)", {**theirs[-1], "wall_s": d})
     print(f"{label}: ratio cardiosieve / DuckDB = {g / d:.2f}; without the gate {b / d:.2f}")
+    return g, b, d
 
 
 def main() -> None:
@@ -122,18 +148,23 @@ def main() -> None:
     lake = "/tmp/cs-bench-1y"
     config = ensure_lake(Path(lake), 60000, 365, end)
     runs = [ours(lake, config, *night) for _ in range(3)]
-    show("one night, 1-year lake, with quality gate (median of 3)",
-         {**runs[-1], "wall_s": statistics.median(r["wall_s"] for r in runs)})
+    gated = statistics.median(r["wall_s"] for r in runs)
+    show("one night, 1-year lake, with quality gate (median of 3)", {**runs[-1], "wall_s": gated})
     runs = [ours(lake, config, *night, quality=False) for _ in range(3)]
-    show("one night, 1-year lake, without quality gate (median of 3)",
-         {**runs[-1], "wall_s": statistics.median(r["wall_s"] for r in runs)})
+    bare = statistics.median(r["wall_s"] for r in runs)
+    show("one night, 1-year lake, without quality gate (median of 3)", {**runs[-1], "wall_s": bare})
+    sql = statistics.median(run_json(DUCKDB_CODE, lake, *night)["wall_s"] for _ in range(3))
+    print(f"one night, 1-year lake, DuckDB SQL (median of 3): wall {sql:.2f} s")
+    target("one night with the gate", gated, sql, 3.0, "s")
+    target("one night without the gate", bare, sql, 1.2, "s")
     if not args.skip_long:
         long_lake = "/tmp/cs-bench-3y-even"
         long_config = ensure_lake(Path(long_lake), even_patients(60000, 365, 365 * 3), 365 * 3, end)
         runs = [ours(long_lake, long_config, *night) for _ in range(3)]
         show("one night, 3-year lake, with quality gate (median of 3)",
              {**runs[-1], "wall_s": statistics.median(r["wall_s"] for r in runs)})
-    race(lake, config, *month, "30-day backfill, 1-year lake")
+    g, _, d = race(lake, config, *month, "30-day backfill, 1-year lake")
+    target("30-day backfill with the gate", g, d, 2.0, "x")
     if not args.skip_network:
         net = "/tmp/cs-bench-network"
         net_config = ensure_lake(Path(net), 240000, 365, end)
@@ -142,6 +173,9 @@ def main() -> None:
         theirs = run_json(DUCKDB_CODE, net, *year)
         show("1-year backfill, network lake, DuckDB SQL", theirs)
         print(f"1-year network backfill: ratio cardiosieve / DuckDB = {mine['wall_s'] / theirs['wall_s']:.2f}")
+        target("1-year network backfill with the gate", mine["wall_s"], theirs["wall_s"], 3.0, "x")
+        target("1-year network backfill, peak memory of the main process", mine["peak_mb"], None, 4096, "mb")
+    print_targets()
 
 
 if __name__ == "__main__":

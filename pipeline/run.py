@@ -322,9 +322,13 @@ def _quality_result(lake, d: Path, lo, hi, settings: Settings, verdict: bool):
     if not verdict:
         return run_quality(tables, hi, settings=settings, evaluator=OWN)
     load_rejects = pd.read_parquet(d / "rejects.parquet", columns=["table", "scope"])
-    tonight = {"ecg": len(tables["ecg"]) + int(((load_rejects["table"] == "ecg") & (load_rejects["scope"] == "night")).sum())}
+    # Tonight's ECGs (not the prior ECGs of the history window) and the labs read for them.
+    rejected = {"ecg": int(((load_rejects["table"] == "ecg") & (load_rejects["scope"] == "night")).sum()),
+                "lab": int((load_rejects["table"] == "lab").sum())}
+    contract = {t: (len(tables[t]) + n, n) for t, n in rejected.items() if t in tables}
     return run_quality(tables, hi, trailing_counts=trailing_counts(lake, lo, hi), settings=settings,
-                       tonight_counts=tonight, lab_volume=lab_volume(lake, lo, hi), evaluator=BOTH)
+                       tonight_counts={"ecg": contract["ecg"][0]}, lab_volume=lab_volume(lake, lo, hi),
+                       evaluator=BOTH, contract_rejects=contract)
 
 
 def _report_or_stop(out, d: Path, result) -> dict:
