@@ -132,12 +132,13 @@ def _reject_cross_partition_ids(night, history):
     own prior and no row leaves uncounted."""
     from dataclasses import replace
 
-    dup = set(night.clean["ecg_id"]) & set(history.clean["ecg_id"])
-    if not dup:
+    in_history = isin(night.clean["ecg_id"], history.clean["ecg_id"])      # hash sets, not Python sets
+    if not in_history.any():
         return night, history
+    dup = night.clean.loc[in_history, "ecg_id"]
 
     def split(loaded, scope):
-        bad = loaded.clean["ecg_id"].isin(dup).to_numpy()
+        bad = isin(loaded.clean["ecg_id"], dup)
         rejects = pd.DataFrame({"table": c.ECG.name, "scope": scope, "row_key": loaded.clean.loc[bad, "ecg_id"],
                                 "file": "", "column": "ecg_id", "reason": c.DUPLICATE_ID,
                                 "detail": "same ecg_id in another date partition"}, columns=c.REJECT_COLUMNS)
@@ -205,8 +206,10 @@ def stage_align(out, start, end, config=None, settings: Settings | None = None, 
     d = stage_dir(out, lo, hi)
     ecg = read_stage(d, "ecg")
     history = read_stage(d, "ecg_history")
-    removed = set(pd.read_parquet(d / "ecg.parquet", columns=["ecg_id"])["ecg_id"]) - set(ecg["ecg_id"])
-    history = history[~history["ecg_id"].isin(removed)]   # night ECGs the quality gate removed are no baseline
+    loaded = pd.read_parquet(d / "ecg.parquet", columns=["ecg_id"])["ecg_id"]
+    removed = loaded[~isin(loaded, ecg["ecg_id"])]
+    if len(removed):                                       # night ECGs the quality gate removed are no baseline
+        history = history[~isin(history["ecg_id"], removed)]
     aligned = align(ecg, history, read_stage(d, "lab"), read_stage(d, "patient"), read_stage(d, "medication"), settings,
                     lab_rejects=_gate_lab_rejects(d))
     write_parquet_atomic(aligned, d / "aligned.parquet")
@@ -352,10 +355,15 @@ def _report_or_stop(out, d: Path, result) -> dict:
 
 
 def _write_checked(d: Path, result) -> None:
-    """The tables the gate let through and its rejects, for alignment (nothing when it failed)."""
+    """The tables the gate let through and its rejects, for alignment (nothing when it failed).
+    A table the gate removed no row from keeps its loaded file: `read_stage` reads that."""
     if result.passed:
         for n, df in result.clean.items():
-            write_parquet_atomic(df, d / f"{n}.checked.parquet")
+            checked = d / f"{n}.checked.parquet"
+            if len(df) == result.rows_in.get(n, -1):
+                checked.unlink(missing_ok=True)
+            else:
+                write_parquet_atomic(df, checked)
         write_parquet_atomic(result.rejects, d / "rejects_quality.parquet")
 
 

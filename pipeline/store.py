@@ -324,6 +324,10 @@ def open_store(url: str, create: bool = True, busy_timeout_s: float | None = Non
 # Key of the PostgreSQL advisory lock held while the schema is checked and upgraded, so that two
 # processes opening an old store at once migrate it once (any fixed 64-bit number: "cardsiev").
 _PG_SCHEMA_LOCK = 0x63617264_73696576
+# Key of the advisory lock every worklist write holds on PostgreSQL ("cardwrit"): one writer at a
+# time, as SQLite's BEGIN IMMEDIATE gives. Row locks alone are not enough: the upsert and a review
+# each re-rank the whole table, so each would hold rows the other waits for (a deadlock).
+_PG_WRITE_LOCK = 0x63617264_77726974
 
 
 def _stored_version(conn: Connection) -> int | None:
@@ -340,15 +344,16 @@ def _stored_version(conn: Connection) -> int | None:
 
 
 @contextmanager
-def _write_transaction(engine: Engine, pg_lock: int | None = None):
+def _write_transaction(engine: Engine, pg_lock: int | None = _PG_WRITE_LOCK):
     """One write transaction that holds the store's write lock from its first read, so that a
     read-modify-write (the nightly upsert, a review) can never overwrite a concurrent one.
 
     SQLite: the sqlite3 module begins a transaction only before INSERT/UPDATE/DELETE (and CREATE,
     DROP and ALTER would each commit on their own), so the connection is put in driver autocommit
     and BEGIN IMMEDIATE takes the write lock at once; a second writer waits (busy timeout).
-    PostgreSQL: an ordinary transaction; readers that modify lock their rows (FOR UPDATE in
-    `_read`), and `pg_lock` adds an advisory lock released at commit."""
+    PostgreSQL: an ordinary transaction that first takes the advisory lock `pg_lock` (released
+    at commit; by default the worklist's write lock), and readers that modify lock their rows
+    (FOR UPDATE in `_read`) as well."""
     if engine.dialect.name == "sqlite":
         with engine.connect().execution_options(isolation_level="AUTOCOMMIT") as conn:
             conn.exec_driver_sql("BEGIN IMMEDIATE")

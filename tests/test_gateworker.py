@@ -4,6 +4,7 @@ publishes nothing, and the worker never outlives the run."""
 from __future__ import annotations
 
 import json
+from pathlib import Path
 
 import pytest
 
@@ -97,3 +98,30 @@ def test_the_worker_ends_with_the_run_and_with_a_run_that_stops_early(tmp_path):
         assert main(["run", "--lake", str(lake), "--out", str(out), "--config", str(bad),
                      "--start", NIGHT2[0], "--end", NIGHT2[1]]) == 2
     assert early.proc.poll() is not None
+
+
+def test_the_split_gate_publishes_what_the_gate_in_one_process_publishes(tmp_path):
+    """`cardiosieve run` (row checks here, verdict in the worker) and the stages one after the
+    other with the whole gate in-process (what the Airflow tasks do) give the same worklist,
+    aligned table and rejects on the sample lake's last night."""
+    import pandas as pd
+
+    from pipeline import run as r
+
+    lake = Path(__file__).resolve().parents[1] / "sample_lake"
+    config, night = lake / "site.toml", ("2026-11-29T00:00:00Z", "2026-11-30T00:00:00Z")
+    split, whole = tmp_path / "split", tmp_path / "whole"
+    assert main(["run", "--lake", str(lake), "--config", str(config), "--out", str(split),
+                 "--start", night[0], "--end", night[1]]) == 0
+    loaded = r.stage_load(lake, whole, *night, config=config)
+    summary = {"tables": loaded["tables"], "quality": r.stage_quality(lake, whole, *night, config=config),
+               "aligned": r.stage_align(whole, *night, config=config, lake=lake)}
+    summary["findings"] = r.stage_screen(whole, *night, config=config)["by_screen_tier"]
+    summary["worklist"] = r.stage_worklist(whole, *night, config=config)
+    r.stage_finish(whole, *night, summary, config=config)
+    for name in ("worklist.parquet", "aligned.parquet", "rejects.parquet", "criteria_st_deviation.parquet"):
+        a, b = pd.read_parquet(split / name), pd.read_parquet(whole / name)
+        pd.testing.assert_frame_equal(a, b, check_like=False, obj=name)
+    assert len(pd.read_parquet(split / "worklist.parquet")) > 0
+    assert json.loads((split / "quality.json").read_text())["checks"] == \
+        json.loads((whole / "quality.json").read_text())["checks"]
