@@ -7,14 +7,14 @@ BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 DEMO_OUT ?= out/demo
 
-.PHONY: install demo test bench clean sample-lake
+.PHONY: install demo test test-py312 bench clean sample-lake
 
 install: $(STAMP)
 
-$(STAMP): pyproject.toml
+$(STAMP): pyproject.toml constraints.txt
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
 	$(BIN)/python -m pip install --quiet --upgrade pip 2>&1 | { grep -v "^WARNING: Location" || true; }
-	$(BIN)/python -m pip install --quiet -e '.[test,scheduler]' 2>&1 | { grep -v "^WARNING: Location" || true; }
+	$(BIN)/python -m pip install --quiet -c constraints.txt -e '.[test,scheduler]' 2>&1 | { grep -v "^WARNING: Location" || true; }
 	$(BIN)/python -c "import pandas, pyarrow, scipy, sqlalchemy, pytest, duckdb"
 	touch $(STAMP)
 
@@ -26,6 +26,13 @@ demo: install
 
 test: install
 	$(BIN)/python -m pytest
+
+# The same suite under Python 3.12 in its own venv, where python3.12 is installed (CI runs 3.11).
+test-py312:
+	test -x .venv312/bin/python || python3.12 -m venv .venv312
+	.venv312/bin/python -m pip install --quiet --upgrade pip 2>&1 | { grep -v "^WARNING: Location" || true; }
+	.venv312/bin/python -m pip install --quiet -c constraints.txt -e '.[test,scheduler]' 2>&1 | { grep -v "^WARNING: Location" || true; }
+	.venv312/bin/python -m pytest
 
 bench: install
 	$(BIN)/python bench/align.py

@@ -20,12 +20,22 @@ EXIT_CODES_HELP = ("Exit codes: 0 success, 2 bad input or configuration (one-lin
                    "1 internal error.")
 
 
+def _version() -> str:
+    """The installed distribution's version (pyproject.toml), or "unknown" from a bare checkout."""
+    from importlib.metadata import PackageNotFoundError, version
+    try:
+        return version("cardiosieve")
+    except PackageNotFoundError:
+        return "unknown (not installed)"
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="cardiosieve",
         description="Screen ECG measurements against laboratory results and write a prioritised "
                     "worklist for clinical review. " + CAUTION,
         epilog=EXIT_CODES_HELP)
+    p.add_argument("--version", action="version", version=f"cardiosieve {_version()}")
     sub = p.add_subparsers(dest="command", metavar="COMMAND")
 
     run = sub.add_parser("run", help="screen the ECGs acquired in [start, end) and write the worklist",

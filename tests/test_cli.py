@@ -112,6 +112,13 @@ def test_validate_reports_rejects_over_the_whole_lake(tmp_path, capsys):
     assert "ecg:impossible_value" in out and (tmp_path / "v" / "validation_rejects.parquet").exists()
 
 
+def test_version_prints_the_installed_distributions_version(capsys):
+    from importlib.metadata import version
+    with pytest.raises(SystemExit) as done:
+        main(["--version"])
+    assert done.value.code == 0 and capsys.readouterr().out.strip() == f"cardiosieve {version('cardiosieve')}"
+
+
 def test_no_command_prints_help_and_exits_2(capsys):
     assert main([]) == 2
     assert "usage: cardiosieve" in capsys.readouterr().out
