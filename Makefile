@@ -39,7 +39,7 @@ bench: install
 	$(BIN)/python bench/nightly.py
 
 sample-lake: install
-	$(BIN)/python -m pipeline.samplegen --out sample_lake
+	$(BIN)/python -m cardiosieve.pipeline.samplegen --out sample_lake
 
 clean:
 	rm -rf out .pytest_cache

@@ -30,7 +30,7 @@ def ensure_lake(path: Path, patients: int, days: int, end: str = "2026-11-30") -
     if not (path / "ecg").is_dir():
         t = time.perf_counter()
         gen_end = (pd.Timestamp(end) + pd.Timedelta(days=LEAD_OUT_DAYS)).strftime("%Y-%m-%d")
-        subprocess.run([PY, "-m", "pipeline.samplegen", "--out", str(path), "--patients", str(patients),
+        subprocess.run([PY, "-m", "cardiosieve.pipeline.samplegen", "--out", str(path), "--patients", str(patients),
                         "--days", str(days + LEAD_OUT_DAYS), "--end", gen_end], check=True, cwd=ROOT,
                        stdout=subprocess.DEVNULL)
         for folder in path.glob("*/date=*"):
@@ -44,7 +44,7 @@ def even_patients(patients: int, days: int, long_days: int) -> int:
     """Patients for a lake of `long_days` whose nights hold as many ECGs as a lake of `patients`
     over `days`: only the history grows (the generator gives a longer lake more ECGs per patient)."""
     sys.path.insert(0, str(ROOT))
-    from pipeline.samplegen import ecgs_per_patient
+    from cardiosieve.pipeline.samplegen import ecgs_per_patient
 
     return round(patients * long_days / days * ecgs_per_patient(days) / ecgs_per_patient(long_days))
 

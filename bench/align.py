@@ -21,7 +21,7 @@ from _common import ensure_lake, even_patients, run_json
 NIGHT_CODE = """
 import json, resource, sys, time
 t0 = time.perf_counter()
-from pipeline.run import stage_load, stage_align
+from cardiosieve.pipeline.run import stage_load, stage_align
 lake, out, start, end, config = sys.argv[1:6]
 t1 = time.perf_counter()
 loaded = stage_load(lake, out, start, end, config=config or None)

@@ -28,9 +28,9 @@ import json, resource, sys, time
 t0 = time.perf_counter()
 lake, out, start, end, config, quality = sys.argv[1:7]
 from contextlib import nullcontext
-from pipeline.gateworker import GateWorker
+from cardiosieve.pipeline.gateworker import GateWorker
 with (GateWorker(config or None) if quality == "1" else nullcontext()) as gate:
-    from pipeline.run import run_interval
+    from cardiosieve.pipeline.run import run_interval
     s = run_interval(lake, out, start, end, config=config or None, quality=quality == "1", gate=gate)
 print(json.dumps({"total_s": time.perf_counter() - t0, "seconds": s["seconds"], "ecgs": s["tables"]["ecg"]["screened"],
                   "findings": sum(sum(t.values()) for t in s["findings"].values()), "chunks": s["chunks"],

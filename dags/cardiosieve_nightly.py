@@ -95,15 +95,15 @@ def call_stage(fn, *args, lock: tuple[str, str | None] | None = None, **kwargs):
     from contextlib import nullcontext
 
     from airflow.sdk.exceptions import AirflowFailException
-    from pipeline.errors import BadInputError
-    from pipeline.runlock import RunLockError, run_lock
-    from pipeline.store import StoreLockedError, sqlite_url
+    from cardiosieve.pipeline.errors import BadInputError
+    from cardiosieve.pipeline.runlock import RunLockError, run_lock
+    from cardiosieve.pipeline.store import StoreLockedError, sqlite_url
 
     try:
         if lock is None:
             held = nullcontext()
         else:
-            from pipeline.run import usable_out
+            from cardiosieve.pipeline.run import usable_out
             out = usable_out(lock[0])
             held = run_lock(out, lock[1] or sqlite_url(out))
         with held:
@@ -123,7 +123,7 @@ def run_interval_bounds(context) -> tuple[str, str]:
     """[start, end) of this run as ISO strings: explicit Params when given, else the data interval.
     A run with neither (e.g. a manual trigger without logical date) fails; never "now"."""
     from airflow.sdk.exceptions import AirflowFailException
-    from pipeline.run import RunError, interval
+    from cardiosieve.pipeline.run import RunError, interval
 
     params = context["params"]
     start, end = params.get("start"), params.get("end")
@@ -250,8 +250,8 @@ def cardiosieve_nightly():
     @task
     def validate_contract(**context) -> dict:
         """Read the night and its context against the lake contract; write stage files and rejects."""
-        from pipeline.publish import clean_leftovers
-        from pipeline.run import stage_load
+        from cardiosieve.pipeline.publish import clean_leftovers
+        from cardiosieve.pipeline.run import stage_load
 
         def load(*args, **kwargs):
             clean_leftovers(params["out"])          # what a crashed run left behind, under the lock
@@ -266,21 +266,21 @@ def cardiosieve_nightly():
     @task
     def quality_gate(loaded: dict, params=None) -> dict:
         """Great Expectations gate; writes OUT/quality.json and .html even when it stops the run."""
-        from pipeline.run import stage_quality
+        from cardiosieve.pipeline.run import stage_quality
 
         return call_stage(stage_quality, params["lake"], params["out"], loaded["start"], loaded["end"],
                           config=params["config"] or None, lock=stage_lock(params))
 
     @task
     def align(loaded: dict, quality: dict, params=None) -> dict:
-        from pipeline.run import stage_align
+        from cardiosieve.pipeline.run import stage_align
 
         return call_stage(stage_align, params["out"], loaded["start"], loaded["end"],
                           config=params["config"] or None, lake=params["lake"], lock=stage_lock(params))
 
     @task
     def screen(loaded: dict, aligned: dict, params=None) -> dict:
-        from pipeline.run import stage_screen
+        from cardiosieve.pipeline.run import stage_screen
 
         return call_stage(stage_screen, params["out"], loaded["start"], loaded["end"], config=params["config"] or None,
                           lock=stage_lock(params))
@@ -288,7 +288,7 @@ def cardiosieve_nightly():
     @task(outlets=[WORKLIST])
     def publish_worklist(loaded: dict, screened: dict, params=None, outlet_events=None) -> dict:
         """Build the worklist items, upsert them in one transaction, write OUT/worklist.parquet."""
-        from pipeline.run import stage_worklist
+        from cardiosieve.pipeline.run import stage_worklist
 
         published = call_stage(stage_worklist, params["out"], loaded["start"], loaded["end"],
                                config=params["config"] or None, db=worklist_db_url(params), lock=stage_lock(params))
@@ -301,7 +301,7 @@ def cardiosieve_nightly():
                           params=None) -> dict:
         """OUT/rejects.parquet (every reject of the interval), OUT/aligned.parquet and
         OUT/run_summary.json, as the CLI writes them; returns the outputs' paths."""
-        from pipeline.run import stage_finish
+        from cardiosieve.pipeline.run import stage_finish
 
         tables = loaded["tables"]
         tables["ecg"]["screened"] = aligned["aligned"]

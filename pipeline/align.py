@@ -27,8 +27,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from pipeline.config import Settings
-from pipeline.frames import whole_years
+from cardiosieve.pipeline.config import Settings
+from cardiosieve.pipeline.frames import whole_years
 
 ANALYTE_PREFIX = {"potassium": "k", "magnesium": "mg", "calcium": "ca"}
 PRIOR_COLUMNS = ["heart_rate_bpm", "rr_ms", "pr_ms", "qrs_ms", "qt_ms"]

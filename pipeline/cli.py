@@ -11,8 +11,8 @@ from __future__ import annotations
 import argparse
 import sys
 
-from pipeline import CAUTION
-from pipeline.errors import BadInputError
+from cardiosieve.pipeline import CAUTION
+from cardiosieve.pipeline.errors import BadInputError
 
 EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT, EXIT_PARTIAL = 0, 1, 2, 3
 EXIT_CODES_HELP = ("Exit codes: 0 success, 2 bad input or configuration (one-line reason), "
@@ -61,7 +61,7 @@ def build_parser() -> argparse.ArgumentParser:
     val.set_defaults(handler=_cmd_validate)
 
     try:
-        from pipeline import commands        # review, yield, export, show (stdlib-only at import)
+        from cardiosieve.pipeline import commands        # review, yield, export, show (stdlib-only at import)
     except ImportError:
         commands = None
     if commands is not None:
@@ -105,16 +105,16 @@ def main(argv: list[str] | None = None) -> int:
 
 
 def _cmd_run(args) -> int:
-    from pipeline.gateworker import GateWorker
+    from cardiosieve.pipeline.gateworker import GateWorker
     with GateWorker(args.config) as gate:      # first: Great Expectations imports while this process goes on
-        from pipeline.run import run_interval
+        from cardiosieve.pipeline.run import run_interval
         summary = run_interval(args.lake, args.out, args.start, args.end, config=args.config, db=args.db, gate=gate)
     print(format_summary(summary))
     return EXIT_OK
 
 
 def _cmd_validate(args) -> int:
-    from pipeline.validate import validate_lake
+    from cardiosieve.pipeline.validate import validate_lake
     result = validate_lake(args.lake, config=args.config, start=args.start, end=args.end, out=args.out)
     print(format_validation(result))
     return EXIT_OK

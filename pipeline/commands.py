@@ -20,9 +20,9 @@ import argparse
 import sys
 from pathlib import Path
 
-from pipeline import CAUTION
-from pipeline.cli import EXIT_BAD_INPUT, EXIT_OK, EXIT_PARTIAL
-from pipeline.errors import BadInputError
+from cardiosieve.pipeline import CAUTION
+from cardiosieve.pipeline.cli import EXIT_BAD_INPUT, EXIT_OK, EXIT_PARTIAL
+from cardiosieve.pipeline.errors import BadInputError
 # Kept in step with pipeline.store.OUTCOMES (tests/test_commands.py checks it); repeated here
 # because this module may not import the store at start-up.
 OUTCOME_HELP = "finding_real, finding_not_real, already_known, data_problem"
@@ -99,7 +99,7 @@ def _url(args) -> str | None:
         if not path.exists():
             _fail(f"no worklist database at {path}")
             return None
-        from pipeline.store import sqlite_url
+        from cardiosieve.pipeline.store import sqlite_url
         return sqlite_url(args.out)
     _fail("give --db URL or --out OUT")
     return None
@@ -107,12 +107,12 @@ def _url(args) -> str | None:
 
 def _store(url: str):
     """The existing store at `url`, never a new one (StoreUrlError otherwise, exit 2)."""
-    from pipeline.store import open_store
+    from cardiosieve.pipeline.store import open_store
     return open_store(url, create=False)
 
 
 def handle_review(args) -> int:
-    from pipeline.store import import_reviews_csv, record_review
+    from cardiosieve.pipeline.store import import_reviews_csv, record_review
 
     url = _url(args)
     if url is None:
@@ -158,7 +158,7 @@ def format_table(rows: list[list[str]], header: list[str], right: set[str] = fro
 
 
 def handle_yield(args) -> int:
-    from pipeline.store import yield_table
+    from cardiosieve.pipeline.store import yield_table
 
     url = _url(args)
     if url is None:
@@ -179,7 +179,7 @@ def handle_yield(args) -> int:
 
 
 def handle_export(args) -> int:
-    from pipeline.store import export_items
+    from cardiosieve.pipeline.store import export_items
 
     url = _url(args)
     if url is None:
@@ -198,8 +198,8 @@ def handle_show(args) -> int:
     so an item reviewed this morning would still show open there."""
     import pandas as pd
 
-    from pipeline.store import read_items
-    from pipeline.worklist import STATUS_CLOSED
+    from cardiosieve.pipeline.store import read_items
+    from cardiosieve.pipeline.worklist import STATUS_CLOSED
 
     url = _url(args)
     if url is None:

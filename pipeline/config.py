@@ -12,10 +12,10 @@ import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from pipeline.codes import (LOINC_CALCIUM_MASS, LOINC_CALCIUM_MOLAR, LOINC_MAGNESIUM_MASS, LOINC_MAGNESIUM_MOLAR,
+from cardiosieve.pipeline.codes import (LOINC_CALCIUM_MASS, LOINC_CALCIUM_MOLAR, LOINC_MAGNESIUM_MASS, LOINC_MAGNESIUM_MOLAR,
                             LOINC_POTASSIUM_BLOOD, LOINC_POTASSIUM_SERUM)
-from pipeline.contract import AMPLITUDE_UNITS, TABLES, TIME_UNITS
-from pipeline.errors import BadInputError
+from cardiosieve.pipeline.contract import AMPLITUDE_UNITS, TABLES, TIME_UNITS
+from cardiosieve.pipeline.errors import BadInputError
 
 
 class ConfigError(BadInputError):
@@ -224,7 +224,7 @@ def settings_from_dict(raw: dict, source: str = "config") -> Settings:
 def _check_rules(rules: dict, source: str) -> None:
     """[rules.<screen>] overrides are checked at start-up against the shipped rule file, not after
     alignment: an unknown screen or key, or a value of the wrong kind, is a ConfigError."""
-    from screens.criteria import load_rules   # the rule file and its checks live with the screens
+    from cardiosieve.screens.criteria import load_rules   # the rule file and its checks live with the screens
 
     try:
         load_rules(rules or None, source_name=source)

@@ -34,7 +34,7 @@ class GateWorker:
 
     def __init__(self, config=None):
         self.config = None if config is None else str(config)
-        self.proc = subprocess.Popen([sys.executable, "-m", "pipeline.gateworker"], stdin=subprocess.PIPE,
+        self.proc = subprocess.Popen([sys.executable, "-m", "cardiosieve.pipeline.gateworker"], stdin=subprocess.PIPE,
                                      stdout=subprocess.PIPE, text=True, encoding="utf-8")
         self.pending = 0
 
@@ -56,8 +56,8 @@ class GateWorker:
 
     def result(self) -> dict:
         """The verdict of the oldest submitted chunk: its summary, or the error it raises."""
-        from pipeline.errors import BadInputError
-        from pipeline.quality import QualityGateError
+        from cardiosieve.pipeline.errors import BadInputError
+        from cardiosieve.pipeline.quality import QualityGateError
 
         line = self.proc.stdout.readline()
         self.pending -= 1
@@ -102,9 +102,9 @@ def _serve() -> None:
     _die_with_parent()
     import great_expectations  # noqa: F401  (warm: the import is most of the gate's cost)
 
-    from pipeline.errors import BadInputError
-    from pipeline.quality import QualityGateError
-    from pipeline.run import stage_gate_verdict
+    from cardiosieve.pipeline.errors import BadInputError
+    from cardiosieve.pipeline.quality import QualityGateError
+    from cardiosieve.pipeline.run import stage_gate_verdict
 
     for line in sys.stdin:
         req = json.loads(line)

@@ -53,10 +53,10 @@ import pyarrow.dataset as ds
 import pyarrow.fs as pafs
 import pyarrow.parquet as pq
 
-from pipeline import contract as c
-from pipeline.config import Settings
-from pipeline.errors import BadInputError
-from pipeline.normalise import (FILE_COLUMN, ContractError, Normalised, empty_rejects, empty_table,
+from cardiosieve.pipeline import contract as c
+from cardiosieve.pipeline.config import Settings
+from cardiosieve.pipeline.errors import BadInputError
+from cardiosieve.pipeline.normalise import (FILE_COLUMN, ContractError, Normalised, empty_rejects, empty_table,
                                 normalise_table, reject_duplicates, reject_rows)
 
 

@@ -13,10 +13,10 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from pipeline import contract as c
-from pipeline.config import Settings
-from pipeline.errors import BadInputError
-from pipeline.frames import isin
+from cardiosieve.pipeline import contract as c
+from cardiosieve.pipeline.config import Settings
+from cardiosieve.pipeline.errors import BadInputError
+from cardiosieve.pipeline.frames import isin
 
 
 class ContractError(BadInputError):

@@ -31,7 +31,7 @@ import shutil
 import time
 from pathlib import Path
 
-from pipeline.files import private_dir
+from cardiosieve.pipeline.files import private_dir
 
 RUNS_DIR, CURRENT, GATE_STOPPED, STAGE_DIR = "runs", "current", "gate_stopped", "_stage"
 BUILDING_PREFIX = ".building-"
@@ -58,7 +58,7 @@ def new_run_folder(out) -> Path:
 def publish(out, building: Path, run_id: str, names: list[str]) -> Path:
     """Switch the run built in `building` in as OUT's published state (module docstring) and
     return its final folder."""
-    from pipeline.faults import fault_point
+    from cardiosieve.pipeline.faults import fault_point
 
     out = Path(out)
     _fsync_dir(building)

@@ -39,13 +39,13 @@ from typing import Mapping
 import numpy as np
 import pandas as pd
 
-from pipeline import contract as c
-from pipeline.config import Settings
-from pipeline.errors import BadInputError
-from pipeline.files import write_text_atomic
-from pipeline.frames import isin
-from pipeline.jsontext import plain
-from pipeline.normalise import FILE_COLUMN
+from cardiosieve.pipeline import contract as c
+from cardiosieve.pipeline.config import Settings
+from cardiosieve.pipeline.errors import BadInputError
+from cardiosieve.pipeline.files import write_text_atomic
+from cardiosieve.pipeline.frames import isin
+from cardiosieve.pipeline.jsontext import plain
+from cardiosieve.pipeline.normalise import FILE_COLUMN
 
 log = logging.getLogger(__name__)
 

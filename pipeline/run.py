@@ -15,14 +15,14 @@ from pathlib import Path
 
 import pandas as pd
 
-from pipeline import CAUTION
-from pipeline import contract as c
-from pipeline.config import Settings, load_settings
-from pipeline.errors import BadInputError
-from pipeline.faults import fault_point
-from pipeline.files import private_dir, write_json_atomic, write_parquet_atomic
-from pipeline.frames import isin
-from pipeline.publish import STAGE_DIR
+from cardiosieve.pipeline import CAUTION
+from cardiosieve.pipeline import contract as c
+from cardiosieve.pipeline.config import Settings, load_settings
+from cardiosieve.pipeline.errors import BadInputError
+from cardiosieve.pipeline.faults import fault_point
+from cardiosieve.pipeline.files import private_dir, write_json_atomic, write_parquet_atomic
+from cardiosieve.pipeline.frames import isin
+from cardiosieve.pipeline.publish import STAGE_DIR
 
 # What the prior-ECG lookup needs of the patients' earlier ECGs (pipeline/align.py PRIOR_COLUMNS).
 CHECKED_TABLES = ("ecg", "ecg_lead", "lab", "patient", "medication")   # what the quality gate sees
@@ -72,7 +72,7 @@ def stage_dir(out: str | Path, lo: pd.Timestamp, hi: pd.Timestamp) -> Path:
 def stage_load(lake, out, start, end, config=None, settings: Settings | None = None) -> dict:
     """Read the night's ECGs and, for their patients only, what alignment needs; write them and
     the rejects. Returns counts per table (rows in = accepted + rejected)."""
-    from pipeline.load import read_table
+    from cardiosieve.pipeline.load import read_table
 
     settings = settings or load_settings(config)
     lo, hi = interval(start, end)
@@ -150,7 +150,7 @@ def _reject_cross_partition_ids(night, history):
 
 def _load_prior_leads(lake, d: Path, aligned: pd.DataFrame, settings: Settings) -> int:
     """Append the chosen prior ECGs' lead rows to the stage's ecg_lead.parquet (scope window)."""
-    from pipeline.load import read_table
+    from cardiosieve.pipeline.load import read_table
 
     priors = aligned.dropna(subset=["prior_ecg_id"])
     priors = priors[~isin(priors["prior_ecg_id"], aligned["ecg_id"])].drop_duplicates("prior_ecg_id")
@@ -199,7 +199,7 @@ def _reasons(rejects: pd.DataFrame) -> dict:
 def stage_align(out, start, end, config=None, settings: Settings | None = None, lake=None) -> dict:
     """Align the loaded night (pure pandas; see pipeline/align.py) and write aligned.parquet;
     with `lake`, also read the lead rows of the chosen prior ECGs (the screens compare with them)."""
-    from pipeline.align import align
+    from cardiosieve.pipeline.align import align
 
     settings = settings or load_settings(config)
     lo, hi = interval(start, end)
@@ -243,7 +243,7 @@ def _rows_per_day(lake, table: c.Table, first: str, last: str) -> dict[str, int]
     """Rows per date partition of `table` over the days [first, last], from the Parquet footers
     only (no data pages)."""
     import pyarrow.parquet as pq
-    from pipeline.load import table_files
+    from cardiosieve.pipeline.load import table_files
 
     days: dict[str, int] = {}
     for f in table_files(lake, table, first, last):
@@ -319,7 +319,7 @@ def stage_gate_verdict(lake, out, start, end, config=None, settings: Settings | 
 def _quality_result(lake, d: Path, lo, hi, settings: Settings, verdict: bool):
     """run_quality over the stage's loaded tables; with `verdict`, Great Expectations too and the
     lake's trailing counts for the volume and feed checks."""
-    from pipeline.quality import BOTH, OWN, run_quality
+    from cardiosieve.pipeline.quality import BOTH, OWN, run_quality
 
     tables = {n: pd.read_parquet(d / f"{n}.parquet") for n in CHECKED_TABLES if (d / f"{n}.parquet").exists()}
     if not verdict:
@@ -337,8 +337,8 @@ def _quality_result(lake, d: Path, lo, hi, settings: Settings, verdict: bool):
 def _report_or_stop(out, d: Path, result) -> dict:
     """Write the report to the stage folder; on a critical failure also to OUT/gate_stopped/
     and raise QualityGateError naming it. Returns the gate's summary (counts only)."""
-    from pipeline.publish import GATE_STOPPED
-    from pipeline.quality import QualityGateError, enforce, write_report
+    from cardiosieve.pipeline.publish import GATE_STOPPED
+    from cardiosieve.pipeline.quality import QualityGateError, enforce, write_report
 
     paths = write_report(result, d)
     if not result.passed:
@@ -371,7 +371,7 @@ def site_rules(settings: Settings):
     """The shipped screen rules with the site's [rules.*] overrides. The ST screen's "old prior
     ECG" limit follows the site's episode window ([windows] episode_h) unless the site sets
     [rules.st_deviation] prior_old_h itself: an elevation inside one episode is persistent, not old."""
-    from screens.criteria import load_rules
+    from cardiosieve.screens.criteria import load_rules
 
     overrides = {screen: dict(values) for screen, values in (settings.rules or {}).items()}
     episode_h = float(settings.windows["episode_h"])
@@ -383,13 +383,13 @@ def site_rules(settings: Settings):
 def stage_screen(out, start, end, config=None, settings: Settings | None = None) -> dict:
     """Run every registered screen over the aligned night; write findings.parquet and each
     screen's criterion table, criteria_<screen>.parquet (one row per aligned ECG)."""
-    from screens import run_screens
+    from cardiosieve.screens import run_screens
 
     settings = settings or load_settings(config)
     lo, hi = interval(start, end)
     d = stage_dir(out, lo, hi)
     rules = site_rules(settings)
-    from pipeline.normalise import empty_table
+    from cardiosieve.pipeline.normalise import empty_table
     leads = [x for x in (read_stage(d, "ecg_lead"), read_stage(d, "prior_lead")) if x is not None]
     leads = pd.concat(leads, ignore_index=True) if leads else empty_table(c.ECG_LEAD)
     findings, tables = run_screens(pd.read_parquet(d / "aligned.parquet"), leads, rules, with_criteria=True)
@@ -411,7 +411,7 @@ def stage_screen(out, start, end, config=None, settings: Settings | None = None)
 def stage_worklist(out, start, end, config=None, db=None, settings: Settings | None = None) -> dict:
     """Fold findings into worklist items, upsert them into the database in one transaction, and
     write the database's ranked items to the stage's worklist.parquet (published by stage_finish)."""
-    from pipeline import store, worklist
+    from cardiosieve.pipeline import store, worklist
 
     settings = settings or load_settings(config)
     rules = site_rules(settings)
@@ -453,9 +453,9 @@ def run_interval(lake, out, start, end, config=None, db=None, quality: bool = Tr
     With the quality gate on, its verdict comes from a worker process (pipeline/gateworker.py):
     `gate`, one the caller started as early as it could (the CLI does, before importing this
     module), else one started here."""
-    from pipeline.publish import clean_leftovers
-    from pipeline.runlock import run_lock
-    from pipeline.store import check_store_url, sqlite_url
+    from cardiosieve.pipeline.publish import clean_leftovers
+    from cardiosieve.pipeline.runlock import run_lock
+    from cardiosieve.pipeline.store import check_store_url, sqlite_url
 
     settings = load_settings(config)
     lo, hi = interval(start, end)
@@ -477,7 +477,7 @@ def _gate(quality: bool, config, gate=None):
     that Great Expectations is imported while the run loads; none when the gate is off."""
     from contextlib import nullcontext
 
-    from pipeline.gateworker import GateWorker
+    from cardiosieve.pipeline.gateworker import GateWorker
     if not quality:
         return nullcontext()
     return nullcontext(gate) if gate is not None else GateWorker(config)
@@ -508,8 +508,8 @@ def stage_finish(out, start, end, summary: dict, settings: Settings | None = Non
     the reject counts by reason, the caution and the output paths), switched in as OUT's
     published state with one rename. `chunk_bounds` lists the boundaries of the chunks a
     backfill ran in; a single-chunk run passes none."""
-    from pipeline.publish import new_run_folder, prune, publish, published_names
-    from screens import SCREENS
+    from cardiosieve.pipeline.publish import new_run_folder, prune, publish, published_names
+    from cardiosieve.screens import SCREENS
 
     settings = settings or load_settings(config)
     lo, hi = interval(start, end)

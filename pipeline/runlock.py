@@ -16,7 +16,7 @@ from contextlib import ExitStack, contextmanager
 from pathlib import Path
 from typing import Iterator
 
-from pipeline.errors import BadInputError
+from cardiosieve.pipeline.errors import BadInputError
 
 LOCK_NAME = ".cardiosieve-run.lock"
 # The PostgreSQL advisory lock key: a fixed 64-bit number of cardiosieve's own.

@@ -20,7 +20,7 @@ QTc by Fridericia, limb and precordial T, ST at J, Sokolow-Lyon); planted abnorm
 the published cut points named there (UKKA-2020 potassium bands, AHA-2009-IV and AHA-2010-TDP
 QTc limits, Fourth Universal Definition of MI ST cut points, Sgarbossa/Smith for LBBB).
 
-Usage: python -m pipeline.samplegen --out DIR [--patients N] [--days D] [--seed S] [--end DATE]
+Usage: python -m cardiosieve.pipeline.samplegen --out DIR [--patients N] [--days D] [--seed S] [--end DATE]
 """
 from __future__ import annotations
 
@@ -39,9 +39,9 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
-from pipeline.codes import (LOINC_CALCIUM_MASS, LOINC_CREATININE, LOINC_GLUCOSE, LOINC_HAEMOGLOBIN,
+from cardiosieve.pipeline.codes import (LOINC_CALCIUM_MASS, LOINC_CREATININE, LOINC_GLUCOSE, LOINC_HAEMOGLOBIN,
                             LOINC_MAGNESIUM_MASS, LOINC_POTASSIUM_SERUM, LOINC_SODIUM, LOINC_TROPONIN_I_HS)
-from pipeline.contract import EXTRA_LEADS, POSTERIOR_LEADS, RIGHT_LEADS, STANDARD_LEADS
+from cardiosieve.pipeline.contract import EXTRA_LEADS, POSTERIOR_LEADS, RIGHT_LEADS, STANDARD_LEADS
 
 HOSPITAL = "Fernhallow General Infirmary"      # invented; not a real place
 PATIENT_PREFIX = "FGI-"
@@ -1320,7 +1320,7 @@ def generate(out_dir, patients: int = 2000, days: int = 30, end: str = "2026-11-
 
 
 def main(argv: list[str] | None = None) -> int:
-    ap = argparse.ArgumentParser(prog="python -m pipeline.samplegen",
+    ap = argparse.ArgumentParser(prog="python -m cardiosieve.pipeline.samplegen",
                                  description="Write an invented cardiosieve lake (seeded, deterministic).")
     ap.add_argument("--out", required=True, help="output folder (its earlier lake files are replaced)")
     ap.add_argument("--patients", type=int, default=2000)

@@ -47,9 +47,9 @@ from sqlalchemy.engine import URL, Connection, Engine, make_url
 from sqlalchemy.exc import ArgumentError, NoSuchModuleError
 from sqlalchemy.schema import AddConstraint, CreateTable, DropConstraint
 
-from pipeline.errors import BadInputError
-from pipeline.files import PRIVATE_FILE_MODE, write_atomic
-from pipeline.worklist import (ACTIVE_STATUSES, ITEM_COLUMNS, STATUS_CLOSED, STATUS_EXPLAINED,
+from cardiosieve.pipeline.errors import BadInputError
+from cardiosieve.pipeline.files import PRIVATE_FILE_MODE, write_atomic
+from cardiosieve.pipeline.worklist import (ACTIVE_STATUSES, ITEM_COLUMNS, STATUS_CLOSED, STATUS_EXPLAINED,
                                STATUS_REOPENED, STATUSES, TIMESTAMP_COLUMNS, apply_reopen_rule,
                                empty_items, normalise_items)
 
@@ -814,7 +814,7 @@ def export_items(engine: Engine, fmt: str = "csv", dest=None) -> int:
     sys.stdout) as CSV for spreadsheets, the screening caution in a last column `caution` of
     every row (a spreadsheet loses file-level notes; a row copied elsewhere keeps it). A file is
     published whole and owner-only (pipeline.files.write_atomic). Returns the number of rows."""
-    from pipeline import CAUTION
+    from cardiosieve.pipeline import CAUTION
 
     if fmt != "csv":
         raise ValueError(f"export: unknown format {fmt!r} (known: csv)")

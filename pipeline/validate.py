@@ -15,11 +15,11 @@ from pathlib import Path
 
 import pandas as pd
 
-from pipeline import contract as c
-from pipeline.config import load_settings
-from pipeline.files import private_dir, write_parquet_atomic
-from pipeline.load import read_table
-from pipeline.run import _reasons, interval
+from cardiosieve.pipeline import contract as c
+from cardiosieve.pipeline.config import load_settings
+from cardiosieve.pipeline.files import private_dir, write_parquet_atomic
+from cardiosieve.pipeline.load import read_table
+from cardiosieve.pipeline.run import _reasons, interval
 
 # Its own name: OUT/rejects.parquet of a run's folder is a link into the published run (pipeline/publish.py).
 VALIDATION_REJECTS = "validation_rejects.parquet"

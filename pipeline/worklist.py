@@ -23,8 +23,8 @@ from typing import Callable
 import numpy as np
 import pandas as pd
 
-from pipeline.jsontext import loads_object, plain
-from screens import FINDING_COLUMNS, SCORE_PART_KEYS
+from cardiosieve.pipeline.jsontext import loads_object, plain
+from cardiosieve.screens import FINDING_COLUMNS, SCORE_PART_KEYS
 
 # ---------------------------------------------------------------------------------------------
 # Statuses: the one place they are named. store.py and commands.py use these.
@@ -268,7 +268,7 @@ def explain_hyperkalemia(items: pd.DataFrame, aligned: pd.DataFrame,
         return reasons
 
     if k_normal_below is None:
-        from screens.criteria import load_rules
+        from cardiosieve.screens.criteria import load_rules
         k_normal_below = load_rules()["hyperkalemia"]["k_mild"].value
     later = aligned[aligned["k_mmol_l"].notna()].copy()
     later["later_at"] = _utc(later["acquired_at"]) + pd.to_timedelta(later["k_offset_min"], unit="min")

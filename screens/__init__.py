@@ -36,11 +36,11 @@ from typing import Callable
 
 import pandas as pd
 
-from screens._frame import FINDING_COLUMNS, SCORE_PART_KEYS, empty_findings
-from screens.criteria import Rules, Threshold, load_rules
-from screens.hyperkalemia import screen_hyperkalemia
-from screens.long_qt import screen_long_qt
-from screens.st_deviation import screen_st_deviation
+from cardiosieve.screens._frame import FINDING_COLUMNS, SCORE_PART_KEYS, empty_findings
+from cardiosieve.screens.criteria import Rules, Threshold, load_rules
+from cardiosieve.screens.hyperkalemia import screen_hyperkalemia
+from cardiosieve.screens.long_qt import screen_long_qt
+from cardiosieve.screens.st_deviation import screen_st_deviation
 
 ScreenFn = Callable[[pd.DataFrame, pd.DataFrame, Rules], pd.DataFrame]
 

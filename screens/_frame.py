@@ -12,9 +12,9 @@ from typing import Any, Iterable, Sequence
 import numpy as np
 import pandas as pd
 
-from pipeline.frames import whole_years
-from pipeline.jsontext import to_json
-from screens.criteria import as_float_array
+from cardiosieve.pipeline.frames import whole_years
+from cardiosieve.pipeline.jsontext import to_json
+from cardiosieve.screens.criteria import as_float_array
 
 FINDING_COLUMNS = [
     "ecg_id",

@@ -17,8 +17,8 @@ from typing import Sequence
 import numpy as np
 import pandas as pd
 
-from pipeline import contract
-from pipeline.frames import positions
+from cardiosieve.pipeline import contract
+from cardiosieve.pipeline.frames import positions
 
 # The lake contract's lead names (pipeline/contract.py), as lists: screens select frame columns
 # with them and add them together.

@@ -22,8 +22,8 @@ from typing import Callable, Sequence
 import numpy as np
 import pandas as pd
 
-from screens._frame import NO_FINDING, SCORE_PART_KEYS, empty_findings
-from screens.criteria import Threshold
+from cardiosieve.screens._frame import NO_FINDING, SCORE_PART_KEYS, empty_findings
+from cardiosieve.screens.criteria import Threshold
 
 ID_COLUMNS = ["ecg_id", "patient_id", "acquired_at"]
 # Score parts every screen's table carries as typed columns.

@@ -134,7 +134,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from screens._frame import (
+from cardiosieve.screens._frame import (
     NO_FINDING,
     build_findings,
     flag,
@@ -146,9 +146,9 @@ from screens._frame import (
     score_parts,
     text,
 )
-from screens._leads import DISPLAY_ORDER, LIMB, PRECORDIAL, wide
-from screens._table import column_readers, criterion_table, dress_flagged, fired_rules, lead_lists, split_leads
-from screens.criteria import Rules, load_rules
+from cardiosieve.screens._leads import DISPLAY_ORDER, LIMB, PRECORDIAL, wide
+from cardiosieve.screens._table import column_readers, criterion_table, dress_flagged, fired_rules, lead_lists, split_leads
+from cardiosieve.screens.criteria import Rules, load_rules
 
 SCREEN = "hyperkalemia"
 REQUIRED = ["ecg_id", "patient_id", "acquired_at", "k_mmol_l", "heart_rate_bpm", "pr_ms", "qrs_ms"]

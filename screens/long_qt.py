@@ -175,7 +175,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from screens._frame import (
+from cardiosieve.screens._frame import (
     NO_FINDING,
     build_findings,
     flag,
@@ -187,8 +187,8 @@ from screens._frame import (
     text,
     age_years,
 )
-from screens._table import column_readers, criterion_table, dress_flagged, fired_rules
-from screens.criteria import Rules, load_rules
+from cardiosieve.screens._table import column_readers, criterion_table, dress_flagged, fired_rules
+from cardiosieve.screens.criteria import Rules, load_rules
 
 SCREEN = "long_qt"
 REQUIRED = ["ecg_id", "patient_id", "acquired_at", "qt_ms", "rr_ms", "heart_rate_bpm", "qrs_ms", "pr_ms"]

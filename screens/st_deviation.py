@@ -212,7 +212,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from screens._frame import (
+from cardiosieve.screens._frame import (
     NO_FINDING,
     age_years,
     build_findings,
@@ -225,7 +225,7 @@ from screens._frame import (
     sex_masks,
     text,
 )
-from screens._leads import (
+from cardiosieve.screens._leads import (
     ALL_LEADS,
     CONTIGUOUS_PAIRS,
     DISPLAY_ORDER,
@@ -235,8 +235,8 @@ from screens._leads import (
     group_pairs,
     wide,
 )
-from screens._table import column_readers, criterion_table, dress_flagged, fired_rules, lead_lists, split_leads
-from screens.criteria import Rules, ScreenRules, load_rules
+from cardiosieve.screens._table import column_readers, criterion_table, dress_flagged, fired_rules, lead_lists, split_leads
+from cardiosieve.screens.criteria import Rules, ScreenRules, load_rules
 
 SCREEN = "st_deviation"
 REQUIRED = ["ecg_id", "patient_id", "acquired_at", "qrs_ms"]

@@ -8,8 +8,8 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from pipeline.codes import LOINC_POTASSIUM_SERUM
-from pipeline.contract import STANDARD_LEADS
+from cardiosieve.pipeline.codes import LOINC_POTASSIUM_SERUM
+from cardiosieve.pipeline.contract import STANDARD_LEADS
 
 UTC = "UTC"
 

@@ -2,9 +2,9 @@
 import pandas as pd
 import pytest
 
-from pipeline.align import align
-from pipeline.codes import LOINC_MAGNESIUM_MASS, LOINC_POTASSIUM_SERUM, LOINC_TROPONIN_I_HS
-from pipeline.config import settings_from_dict
+from cardiosieve.pipeline.align import align
+from cardiosieve.pipeline.codes import LOINC_MAGNESIUM_MASS, LOINC_POTASSIUM_SERUM, LOINC_TROPONIN_I_HS
+from cardiosieve.pipeline.config import settings_from_dict
 from tests.lake_builders import ecg_row, lab_row, patient_row, ts
 
 SETTINGS = settings_from_dict({"troponin": [{"code": LOINC_TROPONIN_I_HS, "url_ng_l": 26.0}],

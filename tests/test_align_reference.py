@@ -8,9 +8,9 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from pipeline import codes
-from pipeline.align import align
-from pipeline.config import settings_from_dict
+from cardiosieve.pipeline import codes
+from cardiosieve.pipeline.align import align
+from cardiosieve.pipeline.config import settings_from_dict
 
 SETTINGS = settings_from_dict({"troponin": [{"code": codes.LOINC_TROPONIN_I_HS, "url_ng_l": 26.0}],
                                "drugs": {"qt_prolonging": ["drug a", "drug b"], "loop_diuretic": ["drug c"]}})

@@ -4,14 +4,14 @@ import sys
 
 import pytest
 
-from pipeline.cli import main
+from cardiosieve.pipeline.cli import main
 from tests.lake_builders import ecg_row, lab_row, patient_row, write_lake
 
 ARGS = ["--start", "2026-11-29", "--end", "2026-11-30"]
 
 
 def test_help_imports_no_heavy_library():
-    code = ("import sys, pipeline.cli as c; c.build_parser().format_help(); "
+    code = ("import sys, cardiosieve.pipeline.cli as c; c.build_parser().format_help(); "
             "print(sorted(m for m in ('pandas', 'pyarrow', 'numpy', 'sqlalchemy', 'airflow', 'great_expectations') if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
     assert out.strip() == "[]"
@@ -21,7 +21,7 @@ def test_nightly_run_without_gate_imports_no_statistics_or_scheduler(tmp_path):
     """The nightly path imports what it uses: scipy.stats is for the yield report only, Airflow and
     Great Expectations for the DAG and the gate."""
     lake = write_lake(tmp_path / "lake")
-    code = ("import sys; from pipeline.run import run_interval; "
+    code = ("import sys; from cardiosieve.pipeline.run import run_interval; "
             f"run_interval({str(lake)!r}, {str(tmp_path / 'out')!r}, '2026-11-29', '2026-11-30', quality=False); "
             "print(sorted(m for m in ('scipy.stats', 'airflow', 'great_expectations', 'duckdb') if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
@@ -59,12 +59,12 @@ def test_corrupt_file_exits_2_naming_the_file(tmp_path, capsys):
 
 
 def _bad_input_errors():
-    from pipeline.config import ConfigError
-    from pipeline.load import LakeError
-    from pipeline.normalise import ContractError
-    from pipeline.quality import QualityGateError
-    from pipeline.run import RunError
-    from pipeline.store import StoreLockedError, StoreSchemaError, StoreUrlError
+    from cardiosieve.pipeline.config import ConfigError
+    from cardiosieve.pipeline.load import LakeError
+    from cardiosieve.pipeline.normalise import ContractError
+    from cardiosieve.pipeline.quality import QualityGateError
+    from cardiosieve.pipeline.run import RunError
+    from cardiosieve.pipeline.store import StoreLockedError, StoreSchemaError, StoreUrlError
     return [ConfigError("site.toml: [analytes] 'iron' is not one of ..."), ContractError("table ecg lacks qt_ms"),
             LakeError("cannot read ecg/date=2026-11-29/part-0.parquet"), RunError("--start must be before --end"),
             QualityGateError(["lab_potassium_plausible: 9.0 % of lab rows"]),
@@ -75,18 +75,18 @@ def _bad_input_errors():
 
 @pytest.mark.parametrize("error", _bad_input_errors(), ids=lambda e: type(e).__name__)
 def test_every_bad_input_error_exits_2_with_its_message(tmp_path, capsys, monkeypatch, error):
-    import pipeline.run
+    import cardiosieve.pipeline.run
 
     def fail(*a, **k):
         raise error
-    monkeypatch.setattr(pipeline.run, "run_interval", fail)
+    monkeypatch.setattr(cardiosieve.pipeline.run, "run_interval", fail)
     assert main(["run", "--lake", "x", "--out", str(tmp_path), *ARGS]) == 2
     assert capsys.readouterr().err == f"cardiosieve: error: {error}\n"
 
 
 def test_internal_error_exits_1_without_a_traceback(tmp_path, capsys, monkeypatch):
-    import pipeline.run
-    monkeypatch.setattr(pipeline.run, "run_interval", lambda *a, **k: 1 / 0)
+    import cardiosieve.pipeline.run
+    monkeypatch.setattr(cardiosieve.pipeline.run, "run_interval", lambda *a, **k: 1 / 0)
     assert main(["run", "--lake", "x", "--out", str(tmp_path), *ARGS]) == 1
     err = capsys.readouterr().err
     assert "internal error (ZeroDivisionError)" in err and "Traceback" not in err
@@ -95,11 +95,11 @@ def test_internal_error_exits_1_without_a_traceback(tmp_path, capsys, monkeypatc
 def test_system_io_error_exits_1_and_says_to_rerun(tmp_path, capsys, monkeypatch):
     import errno
 
-    import pipeline.run
+    import cardiosieve.pipeline.run
 
     def away(*a, **k):
         raise OSError(errno.EIO, "Input/output error", "/mnt/lake/ecg")
-    monkeypatch.setattr(pipeline.run, "run_interval", away)
+    monkeypatch.setattr(cardiosieve.pipeline.run, "run_interval", away)
     assert main(["run", "--lake", "x", "--out", str(tmp_path), *ARGS]) == 1
     err = capsys.readouterr().err
     assert "I/O error: Input/output error (/mnt/lake/ecg)" in err and "rerun" in err and len(err.splitlines()) == 1
@@ -211,7 +211,7 @@ STORE_COMMANDS = [["show"], ["yield"], ["export"],
 
 
 def test_every_exit_code_is_documented_in_the_help():
-    from pipeline.cli import EXIT_BAD_INPUT, EXIT_INTERNAL, EXIT_OK, EXIT_PARTIAL, build_parser
+    from cardiosieve.pipeline.cli import EXIT_BAD_INPUT, EXIT_INTERNAL, EXIT_OK, EXIT_PARTIAL, build_parser
     epilog = build_parser().epilog
     assert (EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT, EXIT_PARTIAL) == (0, 1, 2, 3)
     for code, words in [(0, "success"), (1, "internal error"), (2, "bad input"), (3, "review --import-csv")]:
@@ -225,9 +225,9 @@ def stored(tmp_path):
 
     import pandas as pd
 
-    from pipeline.store import open_store, sqlite_url, upsert_items
-    from pipeline.worklist import build_items
-    from screens import FINDING_COLUMNS
+    from cardiosieve.pipeline.store import open_store, sqlite_url, upsert_items
+    from cardiosieve.pipeline.worklist import build_items
+    from cardiosieve.screens import FINDING_COLUMNS
 
     f = pd.DataFrame([{"ecg_id": "E1", "patient_id": "PAT-SECRET-1",
                        "acquired_at": pd.Timestamp("2026-11-29 20:00", tz="UTC"), "screen": "hyperkalemia",
@@ -277,7 +277,7 @@ def test_a_missing_sqlite_db_exits_2_naming_it_and_is_not_created(tmp_path, caps
 def test_a_store_locked_by_another_process_exits_2_with_one_line(stored, capsys, monkeypatch, command):
     import sqlite3
 
-    from pipeline import store
+    from cardiosieve.pipeline import store
 
     monkeypatch.setattr(store, "SQLITE_BUSY_TIMEOUT_S", 0.2)   # a minute in production
     other = sqlite3.connect(stored, isolation_level=None)

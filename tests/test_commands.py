@@ -8,12 +8,12 @@ import sys
 import pandas as pd
 import pytest
 
-from pipeline import commands
-from pipeline.cli import EXIT_PARTIAL
-from pipeline.store import OUTCOMES, open_store, read_items, sqlite_url, upsert_items
-from pipeline.files import write_parquet_atomic
-from pipeline.worklist import build_items
-from screens import FINDING_COLUMNS
+from cardiosieve.pipeline import commands
+from cardiosieve.pipeline.cli import EXIT_PARTIAL
+from cardiosieve.pipeline.store import OUTCOMES, open_store, read_items, sqlite_url, upsert_items
+from cardiosieve.pipeline.files import write_parquet_atomic
+from cardiosieve.pipeline.worklist import build_items
+from cardiosieve.screens import FINDING_COLUMNS
 
 NIGHT = pd.Timestamp("2026-03-02 02:00", tz="UTC")
 
@@ -51,7 +51,7 @@ def out(tmp_path):
 
 
 def test_module_imports_only_the_standard_library_at_start_up():
-    code = ("import sys, pipeline.commands; "
+    code = ("import sys, cardiosieve.pipeline.commands; "
             "print(sorted(m for m in ('pandas', 'numpy', 'sqlalchemy', 'scipy', 'pyarrow') if m in sys.modules))")
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert done.stdout.strip() == "[]"

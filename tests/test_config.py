@@ -5,8 +5,8 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.cli import main
-from pipeline.config import ConfigError, load_settings
+from cardiosieve.pipeline.cli import main
+from cardiosieve.pipeline.config import ConfigError, load_settings
 from tests.lake_builders import ecg_row, lab_row, patient_row, write_lake
 
 

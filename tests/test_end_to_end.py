@@ -23,10 +23,10 @@ import pandas as pd
 import pyarrow.parquet as pq
 import pytest
 
-from pipeline import CAUTION
-from pipeline.cli import main
-from pipeline.config import load_settings
-from pipeline.run import interval, run_interval, stage_dir
+from cardiosieve.pipeline import CAUTION
+from cardiosieve.pipeline.cli import main
+from cardiosieve.pipeline.config import load_settings
+from cardiosieve.pipeline.run import interval, run_interval, stage_dir
 
 ROOT = Path(__file__).resolve().parents[1]
 LAKE = ROOT / "sample_lake"

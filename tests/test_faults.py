@@ -18,10 +18,10 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-from pipeline.cli import main
-from pipeline.faults import ENV, POINTS
-from pipeline.publish import BUILDING_PREFIX, CURRENT, RUNS_DIR, published_names
-from screens import SCREENS
+from cardiosieve.pipeline.cli import main
+from cardiosieve.pipeline.faults import ENV, POINTS
+from cardiosieve.pipeline.publish import BUILDING_PREFIX, CURRENT, RUNS_DIR, published_names
+from cardiosieve.screens import SCREENS
 from tests.lake_builders import ecg_row, lab_row, patient_row, write_lake
 
 PG_URL = os.environ.get("CARDIOSIEVE_TEST_PG_URL")
@@ -90,7 +90,7 @@ def _kill_at(point: str, lake, out, db=None) -> int:
 
 
 def _review_first_item(db_url: str) -> str:
-    from pipeline.store import open_store, read_items, record_review
+    from cardiosieve.pipeline.store import open_store, read_items, record_review
 
     engine = open_store(db_url)
     try:
@@ -106,7 +106,7 @@ def _review_first_item(db_url: str) -> str:
 def _reviews(db_url: str) -> pd.DataFrame:
     from sqlalchemy import select
 
-    from pipeline.store import open_store, review
+    from cardiosieve.pipeline.store import open_store, review
     engine = open_store(db_url)
     try:
         with engine.connect() as conn:
@@ -119,7 +119,7 @@ def _reviews(db_url: str) -> pd.DataFrame:
 def reference(tmp_path_factory):
     """Night 1 and night 2 run cleanly on SQLite: what a reader must see after each, and OUT
     after night 1 with a review recorded (copied for each kill)."""
-    from pipeline.store import sqlite_url
+    from cardiosieve.pipeline.store import sqlite_url
 
     root = tmp_path_factory.mktemp("faults")
     lake = _lake(root)
@@ -141,7 +141,7 @@ def test_the_two_nights_publish_different_states(reference):
 
 @pytest.mark.parametrize("point", POINTS)
 def test_a_run_killed_at_any_point_leaves_one_published_state_and_a_rerun_completes_it(reference, point, tmp_path):
-    from pipeline.store import sqlite_url
+    from cardiosieve.pipeline.store import sqlite_url
 
     out = tmp_path / "out"
     shutil.copytree(reference["base"], out, symlinks=True)
@@ -203,7 +203,7 @@ def test_two_runs_at_once_on_one_store_never_double_an_item(reference, backend, 
         errs = [p.communicate(timeout=300)[1] for p in procs]
         assert all("Traceback" not in e for e in errs)
         assert sorted(p.returncode for p in procs) in ([0, 0], [0, 2])
-        from pipeline.store import open_store, read_items
+        from cardiosieve.pipeline.store import open_store, read_items
         engine = open_store(db)
         items = read_items(engine)
         engine.dispose()
@@ -217,7 +217,7 @@ def test_two_runs_at_once_on_one_store_never_double_an_item(reference, backend, 
 def test_reviews_recorded_while_a_run_publishes_all_survive(reference, backend, tmp_path):
     # Staff review night 1's items while night 2 runs in another process: every review recorded
     # is in the store afterwards and its item is not open again.
-    from pipeline.store import open_store, read_items, record_review, sqlite_url
+    from cardiosieve.pipeline.store import open_store, read_items, record_review, sqlite_url
     from tests.test_store import drop_everything
 
     lake, out = reference["lake"], tmp_path / "out"

@@ -6,7 +6,7 @@ import os
 import pandas as pd
 import pytest
 
-from pipeline.files import private_dir, write_atomic, write_json_atomic, write_parquet_atomic, write_text_atomic
+from cardiosieve.pipeline.files import private_dir, write_atomic, write_json_atomic, write_parquet_atomic, write_text_atomic
 from tests.modes import any_umask, mode  # noqa: F401 (any_umask is a fixture)
 
 

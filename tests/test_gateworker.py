@@ -8,9 +8,9 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.cli import main
-from pipeline.gateworker import GateWorker, GateWorkerError
-from pipeline.run import run_interval
+from cardiosieve.pipeline.cli import main
+from cardiosieve.pipeline.gateworker import GateWorker, GateWorkerError
+from cardiosieve.pipeline.run import run_interval
 from tests.lake_builders import ecg_row, lab_row, patient_row, write_lake
 
 NIGHT1 = ("2026-11-28", "2026-11-29")
@@ -32,7 +32,7 @@ def _lake(tmp_path, night2_qt=400.0, n=6):
 
 
 def _items(out):
-    from pipeline.store import open_store, read_items, sqlite_url
+    from cardiosieve.pipeline.store import open_store, read_items, sqlite_url
     engine = open_store(sqlite_url(out))
     try:
         return read_items(engine)
@@ -106,7 +106,7 @@ def test_the_split_gate_publishes_what_the_gate_in_one_process_publishes(tmp_pat
     aligned table and rejects on the sample lake's last night."""
     import pandas as pd
 
-    from pipeline import run as r
+    from cardiosieve.pipeline import run as r
 
     lake = Path(__file__).resolve().parents[1] / "sample_lake"
     config, night = lake / "site.toml", ("2026-11-29T00:00:00Z", "2026-11-30T00:00:00Z")

@@ -4,11 +4,11 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from pipeline import contract as c
-from pipeline.codes import LOINC_SODIUM
-from pipeline.config import settings_from_dict
-from pipeline.load import LakeError, read_table, table_files
-from pipeline.run import stage_align, stage_load
+from cardiosieve.pipeline import contract as c
+from cardiosieve.pipeline.codes import LOINC_SODIUM
+from cardiosieve.pipeline.config import settings_from_dict
+from cardiosieve.pipeline.load import LakeError, read_table, table_files
+from cardiosieve.pipeline.run import stage_align, stage_load
 from tests.lake_builders import ecg_row, lab_row, patient_row, write_lake, write_partition, write_table
 
 DEFAULT = settings_from_dict({})
@@ -83,7 +83,7 @@ def test_an_io_error_of_the_system_is_not_taken_for_bad_data(tmp_path, monkeypat
     only a damaged file is a LakeError (bad data, no retry)."""
     import errno
 
-    import pipeline.load as load
+    import cardiosieve.pipeline.load as load
 
     write_table(tmp_path, "ecg", [ecg_row()], "acquired_at")
 

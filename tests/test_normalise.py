@@ -3,10 +3,10 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from pipeline import contract as c
-from pipeline.codes import LOINC_CALCIUM_MASS, LOINC_MAGNESIUM_MASS, LOINC_POTASSIUM_SERUM
-from pipeline.config import settings_from_dict
-from pipeline.normalise import ContractError, normalise_table
+from cardiosieve.pipeline import contract as c
+from cardiosieve.pipeline.codes import LOINC_CALCIUM_MASS, LOINC_MAGNESIUM_MASS, LOINC_POTASSIUM_SERUM
+from cardiosieve.pipeline.config import settings_from_dict
+from cardiosieve.pipeline.normalise import ContractError, normalise_table
 from tests.lake_builders import ecg_row, lab_row, lead_rows
 
 DEFAULT = settings_from_dict({})

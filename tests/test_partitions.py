@@ -4,12 +4,12 @@ import pandas as pd
 import pyarrow.parquet as pq
 import pytest
 
-from pipeline import contract as c
-from pipeline.cli import main
-from pipeline.config import settings_from_dict
-from pipeline.load import LakeError, read_table
-from pipeline.run import run_interval
-from pipeline.validate import validate_lake
+from cardiosieve.pipeline import contract as c
+from cardiosieve.pipeline.cli import main
+from cardiosieve.pipeline.config import settings_from_dict
+from cardiosieve.pipeline.load import LakeError, read_table
+from cardiosieve.pipeline.run import run_interval
+from cardiosieve.pipeline.validate import validate_lake
 from tests.lake_builders import ecg_row, lab_row, lead_rows, write_lake, write_partition
 
 NIGHT = ("2026-11-29T00:00:00Z", "2026-11-30T00:00:00Z")

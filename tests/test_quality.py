@@ -13,9 +13,9 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from pipeline import contract as c
-from pipeline.codes import LOINC_CALCIUM_MASS, LOINC_MAGNESIUM_MASS, LOINC_POTASSIUM_SERUM, LOINC_SODIUM
-from pipeline.quality import (CHECK_COLUMNS, QualityGateError, QualitySettings, build_checks, enforce, ge_context,
+from cardiosieve.pipeline import contract as c
+from cardiosieve.pipeline.codes import LOINC_CALCIUM_MASS, LOINC_MAGNESIUM_MASS, LOINC_POTASSIUM_SERUM, LOINC_SODIUM
+from cardiosieve.pipeline.quality import (CHECK_COLUMNS, QualityGateError, QualitySettings, build_checks, enforce, ge_context,
                               row_count_band, run_quality, run_suite, write_report)
 
 RUN_END = pd.Timestamp("2026-11-30T02:00:00Z")
@@ -488,7 +488,7 @@ def _feed_lake(tmp_path, n_ecg: int, lab_day: str):
 
 
 def _run(tmp_path, lake, config_text: str = ""):
-    from pipeline.cli import main
+    from cardiosieve.pipeline.cli import main
 
     config = tmp_path / "site.toml"
     config.write_text(config_text, encoding="utf-8")
@@ -594,7 +594,7 @@ def test_the_row_checks_fail_exactly_the_rows_great_expectations_fails(seed):
     tables = {"ecg": ecg, "ecg_lead": leads, "lab": lab}
     catalogue = build_checks(QualitySettings(), RUN_END)
     ctx = ge_context()
-    from pipeline.quality import _validate, own_counts
+    from cardiosieve.pipeline.quality import _validate, own_counts
     compared = 0
     for table, df in tables.items():
         checks = [k for k in catalogue[table] if k.expectation != "pandas"]
@@ -608,7 +608,7 @@ def test_the_row_checks_fail_exactly_the_rows_great_expectations_fails(seed):
 
 
 def test_a_disagreement_between_the_evaluators_is_a_critical_failure(monkeypatch):
-    from pipeline import quality
+    from cardiosieve.pipeline import quality
     real = quality._own_count
     monkeypatch.setattr(quality, "_own_count", lambda df, chk: (real(df, chk)[0], np.array([], dtype=np.int64))
                         if chk.name == "ecg_qt_ms_plausible" else real(df, chk))
@@ -640,8 +640,8 @@ def test_an_export_that_lost_every_patient_id_stops_the_run(tmp_path, capsys):
 def test_the_checks_the_gate_leaves_to_the_contract_are_rejected_by_the_loader(tmp_path):
     """Empty ids, conflicting duplicate keys, unknown lead names, sex codes and lab units: each
     is a contract reject with its reason before the gate sees the rows (docs/quality.md)."""
-    from pipeline.config import settings_from_dict
-    from pipeline.load import read_table
+    from cardiosieve.pipeline.config import settings_from_dict
+    from cardiosieve.pipeline.load import read_table
     from tests.lake_builders import ecg_row, lab_row, lead_rows, patient_row, write_lake
 
     lake = write_lake(

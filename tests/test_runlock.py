@@ -9,8 +9,8 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-from pipeline.cli import main
-from pipeline.runlock import LOCK_NAME, PG_LOCK_KEY
+from cardiosieve.pipeline.cli import main
+from cardiosieve.pipeline.runlock import LOCK_NAME, PG_LOCK_KEY
 from tests.lake_builders import ecg_row, lab_row, patient_row, write_lake
 from tests.modes import any_umask, mode  # noqa: F401 (any_umask is a fixture)
 

@@ -11,10 +11,10 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from pipeline import samplegen
-from pipeline.codes import LOINC_CALCIUM_MASS, LOINC_MAGNESIUM_MASS, LOINC_POTASSIUM_SERUM, LOINC_TROPONIN_I_HS
-from pipeline.contract import ALL_LEADS, LIMB_LEADS, PRECORDIAL_LEADS, STANDARD_LEADS
-from pipeline.samplegen import generate
+from cardiosieve.pipeline import samplegen
+from cardiosieve.pipeline.codes import LOINC_CALCIUM_MASS, LOINC_MAGNESIUM_MASS, LOINC_POTASSIUM_SERUM, LOINC_TROPONIN_I_HS
+from cardiosieve.pipeline.contract import ALL_LEADS, LIMB_LEADS, PRECORDIAL_LEADS, STANDARD_LEADS
+from cardiosieve.pipeline.samplegen import generate
 
 REPO = Path(__file__).resolve().parents[1]
 SAMPLE = REPO / "sample_lake"
@@ -73,7 +73,7 @@ def test_regenerating_into_the_same_folder_replaces_old_partitions_and_keeps_rea
 
 
 def test_committed_sample_lake_equals_a_fresh_default_generation(tmp_path):
-    assert (SAMPLE / "_planted.csv").exists(), "sample_lake/ is missing: python -m pipeline.samplegen --out sample_lake"
+    assert (SAMPLE / "_planted.csv").exists(), "sample_lake/ is missing: python -m cardiosieve.pipeline.samplegen --out sample_lake"
     generate(tmp_path)
     assert _hashes(SAMPLE) == _hashes(tmp_path)
 

@@ -1,7 +1,7 @@
 """The rules a run screens under: the shipped rule file plus the site's config."""
 
-from pipeline.config import load_settings
-from pipeline.run import site_rules
+from cardiosieve.pipeline.config import load_settings
+from cardiosieve.pipeline.run import site_rules
 
 
 def _settings(tmp_path, text: str):

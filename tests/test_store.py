@@ -15,13 +15,13 @@ import pytest
 from sqlalchemy import create_engine, insert, inspect, text
 from sqlalchemy.exc import IntegrityError
 
-from pipeline import store
-from pipeline.store import (OUTCOMES, SCHEMA_VERSION, StoreLockedError, StoreSchemaError, StoreUrlError,
+from cardiosieve.pipeline import store
+from cardiosieve.pipeline.store import (OUTCOMES, SCHEMA_VERSION, StoreLockedError, StoreSchemaError, StoreUrlError,
                             cardiosieve_schema, check_store_url, export_items, import_reviews_csv, metadata,
                             open_store, read_items, record_review, review, upsert_items, wilson_interval,
                             worklist_item, yield_table)
-from pipeline.worklist import STATUS_CLOSED, STATUS_OPEN, STATUS_REOPENED, build_items
-from screens import FINDING_COLUMNS
+from cardiosieve.pipeline.worklist import STATUS_CLOSED, STATUS_OPEN, STATUS_REOPENED, build_items
+from cardiosieve.screens import FINDING_COLUMNS
 from tests.modes import any_umask, mode  # noqa: F401 (any_umask is a fixture)
 
 PG_URL = os.environ.get("CARDIOSIEVE_TEST_PG_URL")
@@ -466,7 +466,7 @@ def test_export_csv_in_rank_order_with_formula_text_defused(engine):
     assert back["rank"].tolist() == ["1", "2"] and back["ecg_id"].tolist() == ["e1", "e2"]
     assert back.loc[1, "summary"].startswith("'=")
     assert "item_id" in back.columns and "first_flagged_at" in back.columns
-    from pipeline import CAUTION
+    from cardiosieve.pipeline import CAUTION
     assert back.columns[-1] == "caution" and back["caution"].eq(CAUTION).all()
 
 

@@ -7,9 +7,9 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from pipeline.worklist import (ITEM_COLUMNS, STATUS_CLOSED, STATUS_EXPLAINED, STATUS_OPEN, STATUS_REOPENED,
+from cardiosieve.pipeline.worklist import (ITEM_COLUMNS, STATUS_CLOSED, STATUS_EXPLAINED, STATUS_OPEN, STATUS_REOPENED,
                                build_items, rank_items)
-from screens import FINDING_COLUMNS
+from cardiosieve.screens import FINDING_COLUMNS
 
 NIGHT_END = pd.Timestamp("2026-03-02 02:00", tz="UTC")
 
@@ -252,8 +252,8 @@ def test_repeat_that_is_not_clean_and_normal_does_not_explain(later):
 
 
 def test_back_to_normal_follows_the_sites_mild_band():
-    from pipeline.worklist import explainers_for
-    from screens.criteria import load_rules
+    from cardiosieve.pipeline.worklist import explainers_for
+    from cardiosieve.screens.criteria import load_rules
 
     f = findings(finding("e1", "p1", at="2026-03-01 10:00", values=HAEMOLYSED))
     al = aligned({"ecg_id": "e1", "patient_id": "p1", "acquired_at": "2026-03-01 10:00", **HAEMOLYSED},

@@ -152,7 +152,7 @@ def test_nightly_run_publishes_the_worklist_and_logs_no_patient_identifier(night
 
 
 def test_rerun_with_explicit_interval_and_a_connection_reproduces_the_cli_worklist(nightly, tmp_path, monkeypatch):
-    from pipeline.run import run_interval
+    from cardiosieve.pipeline.run import run_interval
 
     reference = run_interval(str(SAMPLE_LAKE), str(tmp_path / "cli"), NIGHT_START.isoformat(),
                              NIGHT_END.isoformat(), config=str(SITE_CONFIG))
@@ -299,7 +299,7 @@ def test_bad_data_fails_without_retry_and_a_system_io_error_is_left_to_retry(tmp
 
     from airflow.sdk.exceptions import AirflowFailException
 
-    from pipeline.load import LakeError
+    from cardiosieve.pipeline.load import LakeError
 
     m = load_dag_module()
     broken = tmp_path / "lake" / "ecg" / "date=2026-11-29"
@@ -307,9 +307,9 @@ def test_bad_data_fails_without_retry_and_a_system_io_error_is_left_to_retry(tmp
     (broken / "part-0.parquet").write_bytes(b"not parquet")
 
     def damaged():
-        from pipeline import contract as c
-        from pipeline.config import settings_from_dict
-        from pipeline.load import read_table
+        from cardiosieve.pipeline import contract as c
+        from cardiosieve.pipeline.config import settings_from_dict
+        from cardiosieve.pipeline.load import read_table
         return read_table(tmp_path / "lake", c.ECG, settings_from_dict({}), scope="night",
                           window=(pd.Timestamp("2026-11-29T00:00Z"), pd.Timestamp("2026-11-30T00:00Z")))
 
@@ -332,7 +332,7 @@ def test_a_stage_waits_for_a_command_line_run_holding_out_by_retrying(tmp_path):
 
     from airflow.sdk.exceptions import AirflowFailException
 
-    from pipeline.runlock import LOCK_NAME
+    from cardiosieve.pipeline.runlock import LOCK_NAME
 
     m = load_dag_module()
     out = tmp_path / "out"
@@ -351,10 +351,10 @@ def test_every_bad_input_error_fails_without_retry():
     cardiosieve included: retrying cannot mend bad input."""
     from airflow.sdk.exceptions import AirflowFailException
 
-    from pipeline.config import ConfigError
-    from pipeline.quality import QualityGateError
-    from pipeline.run import RunError
-    from pipeline.store import StoreSchemaError
+    from cardiosieve.pipeline.config import ConfigError
+    from cardiosieve.pipeline.quality import QualityGateError
+    from cardiosieve.pipeline.run import RunError
+    from cardiosieve.pipeline.store import StoreSchemaError
 
     m = load_dag_module()
 

@@ -12,7 +12,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from pipeline.contract import STANDARD_LEADS
+from cardiosieve.pipeline.contract import STANDARD_LEADS
 
 ACQUIRED = pd.Timestamp("2026-03-01 10:00", tz="UTC")
 

@@ -6,7 +6,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from screens.criteria import Threshold, load_rules
+from cardiosieve.screens.criteria import Threshold, load_rules
 
 
 @pytest.mark.parametrize(

@@ -14,8 +14,8 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from screens.criteria import load_rules
-from screens.hyperkalemia import (
+from cardiosieve.screens.criteria import load_rules
+from cardiosieve.screens.hyperkalemia import (
     CAVEAT_HEMO_SIGNS,
     CAVEAT_HEMOLYZED,
     TIER_HEMOLYZED_SEVERE_FLOOR,

@@ -13,8 +13,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from screens.criteria import load_rules
-from screens.long_qt import (
+from cardiosieve.screens.criteria import load_rules
+from cardiosieve.screens.long_qt import (
     ALL_MODIFIERS_WORDS,
     BOGOSSIAN_QRS_FACTOR,
     TIER_HIGH_QTC,

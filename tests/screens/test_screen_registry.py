@@ -6,7 +6,7 @@ import pandas as pd
 import pytest
 from pandas.testing import assert_frame_equal
 
-from screens import FINDING_COLUMNS, SCORE_PART_KEYS, SCREENS, empty_findings, load_rules, run_screens
+from cardiosieve.screens import FINDING_COLUMNS, SCORE_PART_KEYS, SCREENS, empty_findings, load_rules, run_screens
 from screen_builders import ecg_rows, lead_rows, leads_of, no_leads
 
 TERRITORY_WORDS = {"inferior", "lateral", "anterior", "septal", "posterior", "right_ventricular"}
@@ -134,7 +134,7 @@ def test_criterion_table_has_one_row_per_ecg_and_its_documented_columns(screen):
     # module docstring with its unit and source.
     import sys
 
-    from screens._table import ID_COLUMNS, SCORE_COLUMNS, documented_columns
+    from cardiosieve.screens._table import ID_COLUMNS, SCORE_COLUMNS, documented_columns
 
     name, fn = screen
     aligned, leads = busy_night()

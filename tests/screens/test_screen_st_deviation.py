@@ -11,10 +11,10 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from screens._frame import age_years
-from screens._leads import CONTIGUOUS_PAIRS
-from screens.criteria import load_rules
-from screens.st_deviation import (
+from cardiosieve.screens._frame import age_years
+from cardiosieve.screens._leads import CONTIGUOUS_PAIRS
+from cardiosieve.screens.criteria import load_rules
+from cardiosieve.screens.st_deviation import (
     CAVEAT_NEW_DEPRESSION,
     CAVEAT_PACED,
     CAVEAT_SLOPE,
