@@ -27,9 +27,11 @@ demo: install
 test: install
 	$(BIN)/python -m pytest
 
-# The same suite under Python 3.12 in its own venv, where python3.12 is installed (CI runs 3.11).
+# The same suite under Python 3.12 in its own venv, where Python 3.12 is installed (CI runs
+# 3.11); name the interpreter with PY312=/path/to/python3.12 when it is not on PATH.
+PY312 ?= python3.12
 test-py312:
-	test -x .venv312/bin/python || python3.12 -m venv .venv312
+	test -x .venv312/bin/python || $(PY312) -m venv .venv312
 	.venv312/bin/python -m pip install --quiet --upgrade pip 2>&1 | { grep -v "^WARNING: Location" || true; }
 	.venv312/bin/python -m pip install --quiet -c constraints.txt -e '.[test,scheduler]' 2>&1 | { grep -v "^WARNING: Location" || true; }
 	.venv312/bin/python -m pytest

@@ -20,8 +20,14 @@ def _run(cmd, cwd, **kw):
 
 
 def test_the_wheel_installs_under_its_namespace_beside_a_top_level_pipeline_package(tmp_path):
+    # Built from a copy without build/, venvs and outputs: setuptools puts whatever a stale
+    # build/lib holds (an older layout's top-level packages) into the wheel.
+    import shutil
+    src = tmp_path / "src"
+    shutil.copytree(ROOT, src, ignore=shutil.ignore_patterns("build", ".venv*", "out", "*.egg-info", "__pycache__",
+                                                             ".git", ".pytest_cache"))
     built = _run([sys.executable, "-m", "pip", "wheel", "--no-deps", "--no-build-isolation", "-w", tmp_path / "dist",
-                  ROOT], cwd=tmp_path)
+                  src], cwd=tmp_path)
     assert built.returncode == 0, built.stderr[-1500:]
     wheel = next((tmp_path / "dist").glob("cardiosieve-*.whl"))
     names = zipfile.ZipFile(wheel).namelist()
