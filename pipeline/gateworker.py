@@ -36,7 +36,6 @@ class GateWorker:
         self.config = None if config is None else str(config)
         self.proc = subprocess.Popen([sys.executable, "-m", "cardiosieve.pipeline.gateworker"], stdin=subprocess.PIPE,
                                      stdout=subprocess.PIPE, text=True, encoding="utf-8")
-        self.pending = 0
 
     def __enter__(self) -> "GateWorker":
         return self
@@ -52,7 +51,6 @@ class GateWorker:
             self.proc.stdin.flush()
         except BrokenPipeError:
             raise GateWorkerError("the quality gate's worker process has stopped") from None
-        self.pending += 1
 
     def result(self) -> dict:
         """The verdict of the oldest submitted chunk: its summary, or the error it raises."""
@@ -60,7 +58,6 @@ class GateWorker:
         from cardiosieve.pipeline.quality import QualityGateError
 
         line = self.proc.stdout.readline()
-        self.pending -= 1
         try:
             reply = json.loads(line)
         except ValueError:

@@ -157,7 +157,8 @@ def misnamed_message(lake, folders: list[Path]) -> str:
             f"(cardiosieve validate counts their rows)")
 
 
-def _file_day(lake, table: c.Table, f: Path) -> str | None:
+def file_day(lake, table: c.Table, f: Path) -> str | None:
+    """The date of the partition folder `f` lies in, None for a file in the table folder itself."""
     parts = f.relative_to(Path(lake) / table.name).parts
     return partition_day(parts[0]) if len(parts) > 1 else None
 
@@ -193,7 +194,7 @@ def read_table(lake: str | Path, table: c.Table, settings: Settings, *, scope: s
     files, bad_folders = _listing(lake, table, first_day, last_day, days)
     if bad_folders and misnamed != "reject":
         raise LakeError(misnamed_message(lake, bad_folders))
-    partitions = {str(f): _file_day(lake, table, f) for f in files}
+    partitions = {str(f): file_day(lake, table, f) for f in files}
     wanted = None if columns is None else set(columns) | {col.name for col in table.columns if col.required}
     site_names = {v: k for k, v in settings.columns.get(table.name, {}).items()}  # contract -> site
 

@@ -243,11 +243,11 @@ def _rows_per_day(lake, table: c.Table, first: str, last: str) -> dict[str, int]
     """Rows per date partition of `table` over the days [first, last], from the Parquet footers
     only (no data pages)."""
     import pyarrow.parquet as pq
-    from cardiosieve.pipeline.load import table_files
+    from cardiosieve.pipeline.load import file_day, table_files
 
     days: dict[str, int] = {}
     for f in table_files(lake, table, first, last):
-        day = next((p[5:] for p in f.parts if p.startswith("date=")), None)
+        day = file_day(lake, table, f)
         if day is not None:
             days[day] = days.get(day, 0) + pq.ParquetFile(f).metadata.num_rows
     return days
