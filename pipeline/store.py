@@ -733,20 +733,19 @@ def import_reviews_csv(engine: Engine, path, timezone: str | None = None) -> dic
 # Yield
 # ---------------------------------------------------------------------------------------------
 def wilson_interval(k, n, confidence: float = WILSON_CONFIDENCE):
-    """Wilson score interval for k successes in n trials [WILSON-1927]; arrays in, (low, high)
-    out; NaN where n == 0."""
-    from scipy.stats import norm         # 0.8 s to import: only the yield report needs it
+    """Wilson score interval for k successes in n trials [WILSON-1927], from SciPy's
+    binomtest(...).proportion_ci(method="wilson"); arrays in, (low, high) out; NaN where n == 0.
+    One call per (screen, tier) group: a yield table has a dozen rows (0.7 ms each, measured)."""
+    from scipy.stats import binomtest    # 2 s to import scipy.stats: only the yield report needs it
 
-    k, n = np.asarray(k, dtype=float), np.asarray(n, dtype=float)
-    z = norm.ppf(1 - (1 - confidence) / 2)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        p = k / n
-        denom = 1 + z ** 2 / n
-        centre = (p + z ** 2 / (2 * n)) / denom
-        half = z / denom * np.sqrt(p * (1 - p) / n + z ** 2 / (4 * n ** 2))
-    low, high = np.clip(centre - half, 0, 1), np.clip(centre + half, 0, 1)
-    bad = ~(n > 0)
-    return np.where(bad, np.nan, low), np.where(bad, np.nan, high)
+    k, n = np.broadcast_arrays(np.asarray(k, dtype=float), np.asarray(n, dtype=float))
+    low, high = np.full(n.shape, np.nan), np.full(n.shape, np.nan)
+    for i in np.ndindex(n.shape):        # a dozen groups, not rows
+        if not n[i] > 0:
+            continue
+        ci = binomtest(int(k[i]), int(n[i])).proportion_ci(confidence_level=confidence, method="wilson")
+        low[i], high[i] = ci.low, ci.high
+    return low, high
 
 
 YIELD_COLUMNS = ["screen", "tier", "items", "reviewed", OUTCOME_FINDING_REAL, OUTCOME_ALREADY_KNOWN,
