@@ -15,7 +15,8 @@ from cardiosieve.pipeline import CAUTION
 from cardiosieve.pipeline.errors import BadInputError
 
 EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT, EXIT_PARTIAL = 0, 1, 2, 3
-EXIT_CODES_HELP = ("Exit codes: 0 success, 2 bad input or configuration (one-line reason), "
+EXIT_CODES_HELP = ("Exit codes: 0 success, 2 bad input or configuration (one-line reason; for validate: "
+                   "some rows rejected), "
                    "3 review --import-csv rejected some lines (each listed; the good ones were imported), "
                    "1 internal error.")
 
@@ -52,7 +53,10 @@ def build_parser() -> argparse.ArgumentParser:
 
     val = sub.add_parser("validate", help="check the lake against the contract and report rejects",
                          description="Read the lake (or only [--start, --end)) against the data contract; "
-                                     "print counts of accepted and rejected rows by reason.")
+                                     "print counts of accepted and rejected rows by reason.",
+                         epilog="Exit codes: 0 every row accepted; 2 some rows rejected (counts by reason "
+                                "printed), or the lake cannot be read against the contract (a missing table "
+                                "or required column, a misread file: one-line reason); 1 internal error.")
     _lake_args(val)
     val.add_argument("--start", help="limit to rows timed in [start, end)")
     val.add_argument("--end", help="end of that interval, excluded")
@@ -117,6 +121,11 @@ def _cmd_validate(args) -> int:
     from cardiosieve.pipeline.validate import validate_lake
     result = validate_lake(args.lake, config=args.config, start=args.start, end=args.end, out=args.out)
     print(format_validation(result))
+    rejected = sum(result["rejects_by_reason"].values())
+    if rejected:                  # a scheduler or a script must see it without reading the report
+        print(f"cardiosieve: validate: {rejected} row(s) rejected by the contract (reasons above)",
+              file=sys.stderr)
+        return EXIT_BAD_INPUT
     return EXIT_OK
 
 

@@ -107,9 +107,18 @@ def test_system_io_error_exits_1_and_says_to_rerun(tmp_path, capsys, monkeypatch
 
 def test_validate_reports_rejects_over_the_whole_lake(tmp_path, capsys):
     lake = write_lake(tmp_path / "lake", ecg=[ecg_row("a"), ecg_row("b", qrs_ms=0.0)])
-    assert main(["validate", "--lake", str(lake), "--out", str(tmp_path / "v")]) == 0
-    out = capsys.readouterr().out
+    assert main(["validate", "--lake", str(lake), "--out", str(tmp_path / "v")]) == 2
+    captured = capsys.readouterr()
+    out = captured.out
+    assert captured.err.strip() == "cardiosieve: validate: 1 row(s) rejected by the contract (reasons above)"
     assert "ecg:impossible_value" in out and (tmp_path / "v" / "validation_rejects.parquet").exists()
+
+
+def test_validate_of_a_clean_lake_exits_0_and_says_nothing_on_stderr(tmp_path, capsys):
+    lake = write_lake(tmp_path / "lake", ecg=[ecg_row("a"), ecg_row("b")])
+    assert main(["validate", "--lake", str(lake)]) == 0
+    captured = capsys.readouterr()
+    assert captured.err == "" and "rejected" in captured.out
 
 
 def test_version_prints_the_installed_distributions_version(capsys):

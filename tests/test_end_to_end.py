@@ -245,7 +245,7 @@ def test_a_normal_patients_ecgs_vary_modestly_from_one_to_the_next(planted):
 
 def test_whole_lake_validate_rejects_every_planted_bad_row_with_its_reason(tmp_path, bad_rows):
     code, printed = _cli(["validate", "--lake", str(LAKE), "--config", str(CONFIG), "--out", str(tmp_path)])
-    assert code == 0 and "rejected rows by reason" in printed
+    assert code == 2 and "rejected rows by reason" in printed   # rejects: exit 2
     rejects = pd.read_parquet(tmp_path / "validation_rejects.parquet")
     got = {(r.table, r.row_key, r.reason, r.column, Path(r.file).relative_to(LAKE).as_posix())
            for r in rejects.itertuples()}

@@ -72,7 +72,7 @@ def test_validate_via_the_cli_prints_the_new_reasons(tmp_path, capsys):
     lake = write_lake(tmp_path / "lake", ecg=[ecg_row("ok")])
     write_partition(lake, "ecg", "date=2026-11-29", [ecg_row("early", acquired_at="2026-11-20T10:00:00Z")])
     write_partition(lake, "ecg", "date=yesterday", [ecg_row("lost")])
-    assert main(["validate", "--lake", str(lake)]) == 0
+    assert main(["validate", "--lake", str(lake)]) == 2
     out = capsys.readouterr().out
     assert "ecg:outside_partition" in out and "ecg:bad_partition_name" in out
 
