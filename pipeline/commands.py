@@ -26,8 +26,12 @@ from cardiosieve.pipeline.errors import BadInputError
 # Kept in step with pipeline.store.OUTCOMES (tests/test_commands.py checks it); repeated here
 # because this module may not import the store at start-up.
 OUTCOME_HELP = "finding_real, finding_not_real, already_known, data_problem"
-SHOW_COLUMNS = ["rank", "tier", "screen", "status", "patient_id", "ecg_at", "score", "summary"]
-SUMMARY_WIDTH = 70
+# Kept in step with the screens and pipeline.worklist (tests/test_commands.py checks them).
+SCREEN_HELP = "hyperkalemia, long_qt, st_deviation"
+STATUS_HELP = "open, reopened, explained, closed"
+TIERS = (1, 2, 3, 4)
+FORMATS = ("text", "json", "csv")
+TEXT_WIDTH = (60, 110)       # text output wraps at the terminal's width, within these bounds
 
 
 def _add_store_options(p: argparse.ArgumentParser) -> None:
@@ -66,6 +70,7 @@ def register(subparsers) -> None:
                                           "PPV = (finding_real + already_known) / reviewed.")
     _add_store_options(p)
     p.add_argument("--since", metavar="DATE", help="only items first flagged at or after DATE (UTC)")
+    p.add_argument("--format", default="text", choices=FORMATS, help="text (default), json or csv")
     p.set_defaults(handler=handle_yield, func=handle_yield)
 
     p = subparsers.add_parser("export", help="write the stored worklist as CSV for spreadsheets")
@@ -74,13 +79,35 @@ def register(subparsers) -> None:
     p.add_argument("--output", "-o", metavar="FILE", default="-", help="file to write (default: standard output)")
     p.set_defaults(handler=handle_export, func=handle_export)
 
-    p = subparsers.add_parser("show", help="print the head of the ranked worklist for a person to read",
-                              description="Print the ranked worklist head as a text table. Shows patient "
-                                          "identifiers: for a person at a screen, not for logs.")
+    p = subparsers.add_parser("show", help="print the ranked worklist, or one item in full, for a person to read",
+                              description="Print the ranked worklist head (each item's id, rank, tier, screen, "
+                                          "status, score, patient, sex and age, care location, ECG time, the "
+                                          "whole summary and its caveats), or with ITEM_ID one item in full: "
+                                          "criteria met with thresholds and sources, values, prior ECG, "
+                                          "episode and reviews. Times in the site's time zone with their "
+                                          "offset. Shows patient identifiers: for a person at a screen, not "
+                                          "for logs.")
+    p.add_argument("item_id", nargs="?", metavar="ITEM_ID", help="show this item in full")
     _add_store_options(p)
-    p.add_argument("--limit", type=int, default=20, help="rows to show (default 20)")
-    p.add_argument("--include-closed", action="store_true", help="also show items already reviewed")
+    p.add_argument("--limit", type=int, default=20, help="items to list (default 20)")
+    p.add_argument("--screen", action="append", metavar="SCREEN",
+                   help=f"only this screen ({SCREEN_HELP}); repeat for several")
+    p.add_argument("--tier", action="append", type=int, choices=TIERS, metavar="TIER",
+                   help="only this tier (1 most urgent .. 4); repeat for several")
+    p.add_argument("--status", action="append", metavar="STATUS",
+                   help=f"only this status ({STATUS_HELP}); repeat for several (default: all but closed)")
+    p.add_argument("--location", metavar="TEXT", help="only items whose care location contains TEXT "
+                                                       "(case-insensitive)")
+    p.add_argument("--include-closed", action="store_true", help="also list items already reviewed")
+    _add_time_zone_options(p)
+    p.add_argument("--format", default="text", choices=FORMATS, help="text (default), json or csv")
     p.set_defaults(handler=handle_show, func=handle_show)
+
+
+def _add_time_zone_options(p: argparse.ArgumentParser) -> None:
+    zone = p.add_mutually_exclusive_group()
+    zone.add_argument("--config", metavar="TOML", help="site configuration: its [site] timezone is used for times")
+    zone.add_argument("--timezone", metavar="TZ", help="IANA time zone for times (default: the site's, else UTC)")
 
 
 # ---------------------------------------------------------------------------------------------
@@ -157,6 +184,10 @@ def format_table(rows: list[list[str]], header: list[str], right: set[str] = fro
     return "\n".join([line(header), line(["-" * w for w in widths])] + [line(r) for r in rows])
 
 
+PPV_NOTE = ("ppv = (finding_real + already_known) / reviewed, by each item's latest review; "
+            "95 % Wilson score interval.")
+
+
 def handle_yield(args) -> int:
     from cardiosieve.pipeline.store import yield_table
 
@@ -164,6 +195,13 @@ def handle_yield(args) -> int:
     if url is None:
         return EXIT_BAD_INPUT
     table = yield_table(_store(url), since=args.since)
+    if args.format == "json":
+        from cardiosieve.pipeline.jsontext import plain
+        _print_json({"caution": CAUTION, "ppv": PPV_NOTE, "rows": plain(table.to_dict("records"))})
+        return EXIT_OK
+    if args.format == "csv":
+        table.to_csv(sys.stdout, index=False, lineterminator="\n")
+        return EXIT_OK
     header = ["screen", "tier", "items", "reviewed", "finding_real", "already_known", "ppv", "ppv_95ci",
               "median_h_to_review"]
     def num(x, fmt):
@@ -173,9 +211,14 @@ def handle_yield(args) -> int:
              "-" if r.ppv_low != r.ppv_low else f"{r.ppv_low:.2f}-{r.ppv_high:.2f}",
              num(r.median_hours_to_review, ".1f")] for r in table.itertuples()]
     print(format_table(rows, header, right=set(header) - {"screen", "ppv_95ci"}))
-    print("ppv = (finding_real + already_known) / reviewed, by each item's latest review; "
-          "95 % Wilson score interval.")
+    print(PPV_NOTE)
     return EXIT_OK
+
+
+def _print_json(obj) -> None:
+    import json
+    json.dump(obj, sys.stdout, ensure_ascii=False, allow_nan=False, indent=1)
+    sys.stdout.write("\n")
 
 
 def handle_export(args) -> int:
@@ -193,30 +236,91 @@ def handle_export(args) -> int:
     return EXIT_OK
 
 
+def _time_zone(args) -> str:
+    """--timezone, else the site configuration's [site] timezone, else UTC (checked: exit 2)."""
+    from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+    if args.timezone:
+        try:
+            ZoneInfo(args.timezone)
+        except (ZoneInfoNotFoundError, ValueError):
+            raise BadInputError(f"--timezone {args.timezone!r} is not a known IANA time zone") from None
+        return args.timezone
+    if args.config:
+        from cardiosieve.pipeline.config import load_settings
+        return load_settings(args.config).timezone or "UTC"
+    return "UTC"
+
+
+def _width() -> int:
+    import shutil
+    lo, hi = TEXT_WIDTH
+    return max(lo, min(hi, shutil.get_terminal_size((100, 24)).columns))
+
+
 def handle_show(args) -> int:
-    """The store's ranked items, as reviews left them: OUT/worklist.parquet is the night's copy,
-    so an item reviewed this morning would still show open there."""
-    import pandas as pd
-
+    """The store's items, as reviews left them: OUT/worklist.parquet is the night's copy, so an
+    item reviewed this morning would still show open there."""
+    from cardiosieve.pipeline import itemview
     from cardiosieve.pipeline.store import read_items
-    from cardiosieve.pipeline.worklist import STATUS_CLOSED
+    from cardiosieve.pipeline.worklist import STATUSES
+    from cardiosieve.screens import SCREENS
 
+    unknown_screens = sorted(set(args.screen or ()) - set(SCREENS))
+    if unknown_screens:
+        return _fail(f"show: unknown --screen {', '.join(unknown_screens)} (known: {', '.join(SCREENS)})")
+    unknown_statuses = sorted(set(args.status or ()) - set(STATUSES))
+    if unknown_statuses:
+        return _fail(f"show: unknown --status {', '.join(unknown_statuses)} (known: {', '.join(STATUSES)})")
+    tz = _time_zone(args)
     url = _url(args)
     if url is None:
         return EXIT_BAD_INPUT
-    items = read_items(_store(url))
-
-    total = len(items)
-    if not args.include_closed:
-        items = items[items["status"].ne(STATUS_CLOSED)]
-    head = items.sort_values("rank", kind="mergesort").head(max(args.limit, 0))
-    rows = []
-    for r in head.itertuples():   # at most --limit rows
-        summary = str(r.summary)
-        summary = summary if len(summary) <= SUMMARY_WIDTH else summary[:SUMMARY_WIDTH - 3] + "..."
-        rows.append([str(r.rank), str(r.tier), str(r.screen), str(r.status), str(r.patient_id),
-                     pd.Timestamp(r.ecg_at).strftime("%Y-%m-%d %H:%M"), f"{r.score:.3f}", summary])
+    engine = _store(url)
+    if args.item_id:
+        return _show_one(engine, args, tz)
+    stored = read_items(engine)
+    matching = itemview.select_items(stored, screens=args.screen, tiers=args.tier, statuses=args.status,
+                                     include_closed=args.include_closed)
+    matching = itemview.at_location(itemview.dress(matching), args.location)
+    head = matching.head(max(args.limit, 0))
+    if args.format == "json":
+        _print_json({"caution": CAUTION, "timezone": tz, "stored": len(stored), "matching": len(matching),
+                     "items": itemview.as_records(head, tz)})
+        return EXIT_OK
+    if args.format == "csv":
+        from cardiosieve.pipeline.store import spreadsheet_safe
+        table = itemview.csv_frame(head, tz)
+        for c in table.columns:
+            if table[c].dtype == "str" or table[c].dtype == object:
+                table[c] = spreadsheet_safe(table[c])
+        table.to_csv(sys.stdout, index=False, lineterminator="\n")
+        return EXIT_OK
     print(CAUTION)
-    print(format_table(rows, SHOW_COLUMNS, right={"rank", "tier", "score"}))
-    print(f"{len(head)} of {len(items)} items shown ({total} stored; times UTC)")
+    print()
+    print(itemview.format_list(head, tz, _width()))
+    print(f"{len(head)} of {len(matching)} matching items shown ({len(stored)} stored); times in {tz}; "
+          f"`show ITEM_ID` gives one item in full")
+    return EXIT_OK
+
+
+def _show_one(engine, args, tz: str) -> int:
+    from cardiosieve.pipeline import itemview
+    from cardiosieve.pipeline.store import read_items, read_reviews
+
+    found = read_items(engine, item_ids=[args.item_id])
+    if found.empty:
+        return _fail(f"show: no item {args.item_id} in the store")
+    dressed = itemview.dress(found)
+    reviews = read_reviews(engine, [args.item_id])
+    if args.format == "json":
+        record = itemview.as_records(dressed, tz)[0]
+        from cardiosieve.pipeline.jsontext import plain
+        record["reviews"] = plain(reviews.assign(
+            reviewed_at=reviews["reviewed_at"].dt.tz_convert(tz)).to_dict("records"))
+        _print_json({"caution": CAUTION, "timezone": tz, "item": record})
+        return EXIT_OK
+    if args.format == "csv":
+        return _fail("show ITEM_ID: --format csv lists items; use text or json for one item")
+    print(itemview.format_item(dressed.iloc[0], reviews, tz, _width()))
     return EXIT_OK

@@ -489,10 +489,26 @@ def _read(conn: Connection, item_ids=None, patient_ids=None, screens=None, for_u
     return df.sort_values(["rank", "item_id"], kind="mergesort", na_position="last").reset_index(drop=True)
 
 
-def read_items(engine: Engine, patient_ids=None, screens=None) -> pd.DataFrame:
-    """Stored items (ITEM_COLUMNS), in rank order; optionally only these patients and screens."""
+def read_items(engine: Engine, patient_ids=None, screens=None, item_ids=None) -> pd.DataFrame:
+    """Stored items (ITEM_COLUMNS), in rank order; optionally only these items, patients and screens."""
     with engine.connect() as conn:
-        return _read(conn, patient_ids=patient_ids, screens=screens)
+        return _read(conn, item_ids=item_ids, patient_ids=patient_ids, screens=screens)
+
+
+REVIEW_COLUMNS = ["item_id", "reviewed_at", "reviewer_role", "outcome", "note", "recorded_via"]
+
+
+def read_reviews(engine: Engine, item_ids) -> pd.DataFrame:
+    """The recorded reviews of these items (REVIEW_COLUMNS), oldest first; reviewed_at in UTC."""
+    ids = sorted(set(map(str, item_ids)))
+    q = select(*[review.c[c] for c in REVIEW_COLUMNS])
+    with engine.connect() as conn:
+        rows = [r for i in range(0, len(ids), CHUNK)
+                for r in conn.execute(q.where(review.c.item_id.in_(ids[i:i + CHUNK]))
+                                      .order_by(review.c.reviewed_at, review.c.review_id)).all()]
+    df = _frame(rows, REVIEW_COLUMNS)
+    df["reviewed_at"] = pd.to_datetime(df["reviewed_at"], utc=True)
+    return df
 
 
 # ---------------------------------------------------------------------------------------------
@@ -799,7 +815,7 @@ _FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
 _BLANKS_THEN_FORMULA = r"[ \t\r\n]+[=+\-@]"
 
 
-def _spreadsheet_safe(s: pd.Series) -> pd.Series:
+def spreadsheet_safe(s: pd.Series) -> pd.Series:
     """Prefix text a spreadsheet would run as a formula with a quote (CSV injection): text that
     starts with a formula character, a tab or a carriage return, or with blanks and then a
     formula character."""
@@ -820,7 +836,7 @@ def export_items(engine: Engine, fmt: str = "csv", dest=None) -> int:
     df = read_items(engine)
     text_cols = [c for c in ITEM_COLUMNS if df[c].dtype == "str"]
     for c in text_cols:
-        df[c] = _spreadsheet_safe(df[c])
+        df[c] = spreadsheet_safe(df[c])
     for c in TIMESTAMP_COLUMNS:
         df[c] = df[c].dt.strftime("%Y-%m-%dT%H:%M:%SZ")
     if dest is None:

@@ -136,6 +136,7 @@ import pandas as pd
 
 from cardiosieve.screens._frame import (
     NO_FINDING,
+    age_years,
     build_findings,
     flag,
     fmt,
@@ -144,6 +145,7 @@ from cardiosieve.screens._frame import (
     num,
     require_columns,
     score_parts,
+    sex_masks,
     text,
 )
 from cardiosieve.screens._leads import DISPLAY_ORDER, LIMB, PRECORDIAL, wide
@@ -372,6 +374,9 @@ def _dress(aligned: pd.DataFrame, table: pd.DataFrame, hit: np.ndarray, r) -> pd
     prior_qrs_known = ~np.isnan(prior_qrs)
     k_ids = text(aligned, "k_result_id")
     prior_ids = text(aligned, "prior_ecg_id")
+    # For the reviewer's context only (the rule reads neither): every screen's evidence has them.
+    female, male, _ = sex_masks(aligned)
+    age = age_years(aligned)
     # Optional input: the lab window the alignment applied (hours), for the texts.
     window_before, window_after = num(aligned, "lab_before_h"), num(aligned, "lab_after_h")
     severe_value = f"{r['k_severe'].value:g}"
@@ -476,6 +481,8 @@ def _dress(aligned: pd.DataFrame, table: pd.DataFrame, hit: np.ndarray, r) -> pd
                     "t_grown_leads": t_grown_names,
                     "prior_ecg_id": prior_ids[i],
                     "k_lowering_24h": bool(k_lowering[i]),
+                    "sex": "F" if female[i] else ("M" if male[i] else None),
+                    "age_years": age[i],
                 },
                 "signs": sign_state,
                 "rules": rules_fired,

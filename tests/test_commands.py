@@ -61,6 +61,16 @@ def test_outcome_help_lists_exactly_the_stored_outcomes():
     assert commands.OUTCOME_HELP.split(", ") == list(OUTCOMES)
 
 
+def test_show_help_lists_exactly_the_screens_statuses_and_tiers():
+    from cardiosieve.pipeline.worklist import STATUSES
+    from cardiosieve.screens import SCREENS
+    from cardiosieve.screens._frame import TIER_LEAST_URGENT, TIER_MOST_URGENT
+
+    assert commands.SCREEN_HELP.split(", ") == list(SCREENS)
+    assert commands.STATUS_HELP.split(", ") == list(STATUSES)
+    assert commands.TIERS == tuple(range(TIER_MOST_URGENT, TIER_LEAST_URGENT + 1))
+
+
 def test_register_adds_the_four_sub_commands():
     for name in ("review", "yield", "export", "show"):
         assert callable(parser().parse_args([name, "--db", "sqlite://"]).handler)
@@ -69,12 +79,13 @@ def test_register_adds_the_four_sub_commands():
 def test_show_prints_the_caution_and_the_ranked_head(out, capsys):
     code, text, _ = run(capsys, "show", "--out", out, "--limit", "2")
     lines = text.splitlines()
+    headers = [line.split() for line in lines if line.startswith("#")]
     assert code == 0
     assert lines[0] == commands.CAUTION
-    assert lines[1].split() == commands.SHOW_COLUMNS
-    assert lines[3].split()[:5] == ["1", "1", "hyperkalemia", "open", "pat-A"]   # tier 1 first
-    assert lines[4].split()[:5] == ["2", "2", "hyperkalemia", "open", "pat-C"]   # then the higher score
-    assert lines[-1].startswith("2 of 3 items shown")
+    assert headers[0][:6] == ["#1", "tier", "1", "hyperkalemia", "open", "score"]   # tier 1 first
+    assert headers[1][:3] == ["#2", "tier", "2"]                                       # then the higher score
+    assert "pat-A" in text and "pat-C" in text and "pat-B" not in text
+    assert lines[-1].startswith("2 of 3 matching items shown (3 stored); times in UTC")
 
 
 def test_show_with_out_and_with_db_give_the_same_rows(out, capsys):
@@ -98,7 +109,7 @@ def test_review_closes_the_item_and_show_hides_it(out, capsys, where):
                         "--at", "2026-03-02T09:00:00Z", "--out", out)
     assert code == 0 and "item closed" in text and "pat-" not in text
     _, shown, _ = run(capsys, "show", where, store_at)
-    assert "pat-A" not in shown and shown.splitlines()[-1].startswith("2 of 2 items shown (3 stored")
+    assert "pat-A" not in shown and shown.splitlines()[-1].startswith("2 of 2 matching items shown (3 stored")
     _, shown_all, _ = run(capsys, "show", where, store_at, "--include-closed")
     assert "pat-A" in shown_all and "closed" in shown_all
 
@@ -106,7 +117,7 @@ def test_review_closes_the_item_and_show_hides_it(out, capsys, where):
 def test_show_with_out_needs_no_worklist_parquet(out, capsys):
     (out / "worklist.parquet").unlink()
     code, text, _ = run(capsys, "show", "--out", out)
-    assert code == 0 and text.splitlines()[-1].startswith("3 of 3 items shown")
+    assert code == 0 and text.splitlines()[-1].startswith("3 of 3 matching items shown")
 
 
 def test_review_help_names_only_the_new_outcomes(capsys):
