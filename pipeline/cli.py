@@ -9,6 +9,7 @@ scheduler logs, so it never carries a patient identifier or a value from a row.
 from __future__ import annotations
 
 import argparse
+import logging
 import sys
 
 from cardiosieve.pipeline import CAUTION
@@ -37,6 +38,7 @@ def build_parser() -> argparse.ArgumentParser:
                     "worklist for clinical review. " + CAUTION,
         epilog=EXIT_CODES_HELP)
     p.add_argument("--version", action="version", version=f"cardiosieve {_version()}")
+    _verbosity_args(p, argparse.SUPPRESS)
     sub = p.add_subparsers(dest="command", metavar="COMMAND")
 
     run = sub.add_parser("run", help="screen the ECGs acquired in [start, end) and write the worklist",
@@ -70,7 +72,48 @@ def build_parser() -> argparse.ArgumentParser:
         commands = None
     if commands is not None:
         commands.register(sub)
+    for command in sub.choices.values():       # also after the command: `cardiosieve run ... -v`
+        _verbosity_args(command, argparse.SUPPRESS)
     return p
+
+
+def _verbosity_args(p: argparse.ArgumentParser, default) -> None:
+    loud = p.add_mutually_exclusive_group()
+    loud.add_argument("-v", "--verbose", action="store_true", default=default,
+                      help="also log each stage with its seconds (stderr)")
+    loud.add_argument("-q", "--quiet", action="store_true", default=default,
+                      help="log only warnings and errors, and print no run summary (it is in "
+                           "OUT/run_summary.json)")
+
+
+class _StderrHandler(logging.StreamHandler):
+    """Writes to whatever sys.stderr is at the time (a test's capture, a redirected stream)."""
+
+    @property
+    def stream(self):
+        return sys.stderr
+
+    @stream.setter
+    def stream(self, _value):
+        pass
+
+
+_LOG_HANDLER = _StderrHandler()
+_LOG_HANDLER.setFormatter(logging.Formatter("%(asctime)s cardiosieve %(levelname)s %(message)s",
+                                            datefmt="%Y-%m-%dT%H:%M:%S%z"))
+
+
+def configure_logging(verbose: bool = False, quiet: bool = False) -> None:
+    """Log records of cardiosieve's modules go to stderr, one plain line each with its time
+    (a terminal and a scheduler's log read the same): INFO by default (a line per chunk of a
+    run, with the time left), DEBUG with --verbose (a line per stage), WARNING with --quiet.
+    What cardiosieve logs is counts, intervals, files and seconds: never a row value or a
+    patient identifier."""
+    logger = logging.getLogger("cardiosieve")
+    logger.setLevel(logging.DEBUG if verbose else logging.WARNING if quiet else logging.INFO)
+    if _LOG_HANDLER not in logger.handlers:
+        logger.addHandler(_LOG_HANDLER)
+    logger.propagate = False                   # not twice through a host application's root handler
 
 
 def _lake_args(p: argparse.ArgumentParser) -> None:
@@ -82,6 +125,7 @@ def _lake_args(p: argparse.ArgumentParser) -> None:
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
+    configure_logging(verbose=getattr(args, "verbose", False), quiet=getattr(args, "quiet", False))
     if getattr(args, "handler", None) is None:
         parser.print_help()
         return EXIT_BAD_INPUT
@@ -113,7 +157,8 @@ def _cmd_run(args) -> int:
     with GateWorker(args.config) as gate:      # first: Great Expectations imports while this process goes on
         from cardiosieve.pipeline.run import run_interval
         summary = run_interval(args.lake, args.out, args.start, args.end, config=args.config, db=args.db, gate=gate)
-    print(format_summary(summary))
+    if not getattr(args, "quiet", False):
+        print(format_summary(summary))
     return EXIT_OK
 
 

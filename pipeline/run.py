@@ -8,6 +8,7 @@ never a mix, and a rerun of the same interval rewrites the same files.
 """
 from __future__ import annotations
 
+import logging
 import os
 import time
 from datetime import datetime
@@ -23,6 +24,10 @@ from cardiosieve.pipeline.faults import fault_point
 from cardiosieve.pipeline.files import private_dir, write_json_atomic, write_parquet_atomic
 from cardiosieve.pipeline.frames import isin
 from cardiosieve.pipeline.publish import STAGE_DIR
+
+# Progress: interval bounds, counts and seconds only, never a row (the CLI shows INFO on stderr:
+# a line per chunk with the time left; --verbose adds a line per stage).
+log = logging.getLogger(__name__)
 
 # What the prior-ECG lookup needs of the patients' earlier ECGs (pipeline/align.py PRIOR_COLUMNS).
 CHECKED_TABLES = ("ecg", "ecg_lead", "lab", "patient", "medication")   # what the quality gate sees
@@ -468,8 +473,54 @@ def run_interval(lake, out, start, end, config=None, db=None, quality: bool = Tr
     bounds.append(hi)
     with run_lock(out, db or sqlite_url(out)), _gate(quality, config, gate) as gate:   # one run per OUT and store
         clean_leftovers(out)                      # what a crashed run left behind
-        parts = [_run_chunk(lake, out, a, b, settings, db, gate) for a, b in zip(bounds[:-1], bounds[1:])]
-        return stage_finish(out, lo, hi, _add_up(parts) | {"chunks": len(parts)}, settings, bounds)
+        progress = Progress(bounds)
+        parts = []
+        for k, (a, b) in enumerate(zip(bounds[:-1], bounds[1:])):
+            parts.append(_run_chunk(lake, out, a, b, settings, db, gate, label=progress.label(k)))
+            progress.done(k, parts[-1])
+        summary = stage_finish(out, lo, hi, _add_up(parts) | {"chunks": len(parts)}, settings, bounds)
+        log.info("run [%s, %s) published in %.1f s", lo.isoformat(), hi.isoformat(), progress.elapsed())
+        return summary
+
+
+class Progress:
+    """Progress lines of a run over `bounds` (chunk edges): which chunk, how long it took, and an
+    estimate of the time left from the pace so far (seconds per day screened; the first chunk
+    also pays the start-up, so early estimates run high)."""
+
+    def __init__(self, bounds: list[pd.Timestamp], clock=time.perf_counter):
+        self.bounds, self.clock = bounds, clock
+        self.t0 = clock()
+        self.n = len(bounds) - 1
+        self.days = [(b - a) / pd.Timedelta(days=1) for a, b in zip(bounds[:-1], bounds[1:])]
+
+    def label(self, k: int) -> str:
+        a, b = self.bounds[k], self.bounds[k + 1]
+        return f"chunk {k + 1}/{self.n} [{a:%Y-%m-%d %H:%M}, {b:%Y-%m-%d %H:%M})"
+
+    def elapsed(self) -> float:
+        return self.clock() - self.t0
+
+    def seconds_left(self, k: int) -> float:
+        """After chunk k: the remaining days at the pace of the days done."""
+        done = sum(self.days[:k + 1])
+        return self.elapsed() / done * sum(self.days[k + 1:]) if done > 0 else float("nan")
+
+    def done(self, k: int, part: dict) -> None:
+        ecg = part.get("tables", {}).get("ecg", {})
+        left = "" if k + 1 == self.n else f"; about {_duration(self.seconds_left(k))} left"
+        log.info("%s: done, %s ECGs screened, %s items tonight (%.1f s in all%s)", self.label(k),
+                 ecg.get("screened", "?"), part.get("worklist", {}).get("items_tonight", "?"), self.elapsed(), left)
+
+
+def _duration(seconds: float) -> str:
+    if seconds != seconds:
+        return "an unknown time"
+    if seconds < 90:
+        return f"{seconds:.0f} s"
+    if seconds < 5400:
+        return f"{seconds / 60:.0f} min"
+    return f"{seconds / 3600:.1f} h"
 
 
 def _gate(quality: bool, config, gate=None):
@@ -570,7 +621,7 @@ def _link_or_copy(src: Path, dst: Path) -> None:
         shutil.copyfile(src, dst)
 
 
-def _run_chunk(lake, out, lo, hi, settings: Settings, db, gate) -> dict:
+def _run_chunk(lake, out, lo, hi, settings: Settings, db, gate, label: str = "chunk") -> dict:
     """One chunk through every stage. With a `gate` (pipeline/gateworker.py) the row checks run
     here and the verdict in the worker, awaited before the worklist stage: nothing reaches the
     store or the outputs unless the gate passed."""
@@ -580,6 +631,7 @@ def _run_chunk(lake, out, lo, hi, settings: Settings, db, gate) -> dict:
         t = time.perf_counter()
         result = fn(*args, **kw)
         seconds[name] = round(time.perf_counter() - t, 3)
+        log.debug("%s: %s %.2f s", label, name, seconds[name])
         return result
 
     loaded = timed("load", stage_load, lake, out, lo, hi, settings=settings)

@@ -312,3 +312,61 @@ def test_run_with_a_sqlite_db_in_a_missing_folder_exits_2_naming_it(tmp_path, ca
                  "--db", f"sqlite:///{folder / 'worklist.sqlite'}", *ARGS]) == 2
     assert f"folder {folder} " in one_line_error(capsys)
     assert not folder.exists()
+
+
+# ---------------------------------------------------------------------------------------------
+# Logging and progress (stderr; counts, intervals and seconds only)
+
+def _secret_lake(tmp_path):
+    return write_lake(tmp_path / "lake", ecg=[ecg_row("ECG-SECRET-1", "PAT-SECRET-1")],
+                      labs=[lab_row("R1", "PAT-SECRET-1", value=4.1)], patients=[patient_row("PAT-SECRET-1")])
+
+
+def test_verbose_logs_each_stage_on_stderr_and_never_an_identifier(tmp_path, capsys):
+    lake = _secret_lake(tmp_path)
+    assert main(["run", "--lake", str(lake), "--out", str(tmp_path / "out"), *ARGS, "--verbose"]) == 0
+    captured = capsys.readouterr()
+    stages = [line.split("): ")[-1].split()[0] for line in captured.err.splitlines()
+              if " DEBUG chunk 1/1 " in line]
+    assert stages == ["load", "quality", "align", "screen", "quality_wait", "worklist"]
+    assert "chunk 1/1 [2026-11-29 00:00, 2026-11-30 00:00): done, 1 ECGs screened" in captured.err
+    assert "SECRET" not in captured.err + captured.out
+    assert "screened: 1" in captured.out                 # the summary still goes to stdout
+
+
+def test_default_logs_a_line_per_chunk_and_quiet_logs_nothing_on_success(tmp_path, capsys):
+    lake = _secret_lake(tmp_path)
+    assert main(["run", "--lake", str(lake), "--out", str(tmp_path / "a"), *ARGS]) == 0
+    err = capsys.readouterr().err
+    assert " DEBUG " not in err and err.count(" INFO ") == 2     # the chunk done, the run published
+    assert main(["-q", "run", "--lake", str(lake), "--out", str(tmp_path / "b"), *ARGS]) == 0
+    assert capsys.readouterr() == ("", "")
+    assert (tmp_path / "b" / "run_summary.json").exists()
+
+
+def test_progress_estimates_the_time_left_from_the_pace_of_the_days_done():
+    import pandas as pd
+
+    from cardiosieve.pipeline.run import Progress
+
+    ticks = iter([0.0, 40.0, 100.0])                     # start, after chunk 1, after chunk 2
+    lo = pd.Timestamp("2026-01-01", tz="UTC")
+    bounds = [lo, lo + pd.Timedelta(days=20), lo + pd.Timedelta(days=40), lo + pd.Timedelta(days=50)]
+    p = Progress(bounds, clock=lambda: next(ticks))
+    assert p.seconds_left(0) == 40.0 / 20 * 30           # 2 s a day, 30 days to go
+    assert p.seconds_left(1) == 100.0 / 40 * 10          # 2.5 s a day, 10 days to go
+    assert p.label(2) == "chunk 3/3 [2026-02-10 00:00, 2026-02-20 00:00)"
+
+
+def test_a_backfill_logs_each_chunk_with_the_time_left(tmp_path, caplog):
+    import logging
+
+    from cardiosieve.pipeline.run import run_interval
+
+    lake = _secret_lake(tmp_path)
+    with caplog.at_level(logging.INFO, logger="cardiosieve"):
+        run_interval(lake, tmp_path / "out", "2026-11-27", "2026-11-30", quality=False, chunk_days=1)
+    done = [r.getMessage() for r in caplog.records if ": done," in r.getMessage()]
+    assert [m.split(" [")[0] for m in done] == ["chunk 1/3", "chunk 2/3", "chunk 3/3"]
+    assert all("left" in m for m in done[:2]) and "left" not in done[2]
+    assert not any("SECRET" in r.getMessage() for r in caplog.records)
