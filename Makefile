@@ -22,7 +22,7 @@ demo: install
 	$(BIN)/cardiosieve run --lake sample_lake --config sample_lake/site.toml --out $(DEMO_OUT) \
 		--start 2026-11-29T00:00:00Z --end 2026-11-30T00:00:00Z
 	@if $(BIN)/cardiosieve --help | grep -q " show "; then \
-		$(BIN)/cardiosieve show --out $(DEMO_OUT) --limit 15; fi
+		$(BIN)/cardiosieve show --out $(DEMO_OUT) --config sample_lake/site.toml --limit 8; fi
 
 test: install
 	$(BIN)/python -m pytest

@@ -175,15 +175,6 @@ def handle_review(args) -> int:
     return EXIT_OK
 
 
-def format_table(rows: list[list[str]], header: list[str], right: set[str] = frozenset()) -> str:
-    """Plain aligned text table (numbers right-aligned)."""
-    widths = [max([len(h)] + [len(r[i]) for r in rows]) for i, h in enumerate(header)]
-    def line(cells):
-        return "  ".join(c.rjust(w) if h in right else c.ljust(w)
-                         for c, w, h in zip(cells, widths, header)).rstrip()
-    return "\n".join([line(header), line(["-" * w for w in widths])] + [line(r) for r in rows])
-
-
 PPV_NOTE = ("ppv = (finding_real + already_known) / reviewed, by each item's latest review; "
             "95 % Wilson score interval.")
 
@@ -202,15 +193,17 @@ def handle_yield(args) -> int:
     if args.format == "csv":
         table.to_csv(sys.stdout, index=False, lineterminator="\n")
         return EXIT_OK
-    header = ["screen", "tier", "items", "reviewed", "finding_real", "already_known", "ppv", "ppv_95ci",
-              "median_h_to_review"]
+    import pandas as pd
+
     def num(x, fmt):
         return "-" if x != x else format(x, fmt)   # NaN shows as "-"
-    rows = [[r.screen, str(r.tier), str(r.items), str(r.reviewed), str(r.finding_real), str(r.already_known),
-             num(r.ppv, ".2f"),
-             "-" if r.ppv_low != r.ppv_low else f"{r.ppv_low:.2f}-{r.ppv_high:.2f}",
-             num(r.median_hours_to_review, ".1f")] for r in table.itertuples()]
-    print(format_table(rows, header, right=set(header) - {"screen", "ppv_95ci"}))
+    shown = pd.DataFrame({
+        "screen": table["screen"], "tier": table["tier"], "items": table["items"], "reviewed": table["reviewed"],
+        "finding_real": table["finding_real"], "already_known": table["already_known"],
+        "ppv": [num(x, ".2f") for x in table["ppv"]],
+        "ppv_95ci": ["-" if lo != lo else f"{lo:.2f}-{hi:.2f}" for lo, hi in zip(table["ppv_low"], table["ppv_high"])],
+        "median_h_to_review": [num(x, ".1f") for x in table["median_hours_to_review"]]})
+    print(shown.to_string(index=False) if len(shown) else "no items flagged" + (f" since {args.since}" if args.since else ""))
     print(PPV_NOTE)
     return EXIT_OK
 
