@@ -11,6 +11,7 @@ from __future__ import annotations
 import argparse
 import logging
 import sys
+from contextlib import contextmanager
 
 from cardiosieve.pipeline import CAUTION
 from cardiosieve.pipeline.errors import BadInputError
@@ -98,22 +99,34 @@ class _StderrHandler(logging.StreamHandler):
         pass
 
 
+PROGRESS_LOGGER = "cardiosieve.pipeline.run"
 _LOG_HANDLER = _StderrHandler()
 _LOG_HANDLER.setFormatter(logging.Formatter("%(asctime)s cardiosieve %(levelname)s %(message)s",
                                             datefmt="%Y-%m-%dT%H:%M:%S%z"))
 
 
-def configure_logging(verbose: bool = False, quiet: bool = False) -> None:
-    """Log records of cardiosieve's modules go to stderr, one plain line each with its time
-    (a terminal and a scheduler's log read the same): INFO by default (a line per chunk of a
-    run, with the time left), DEBUG with --verbose (a line per stage), WARNING with --quiet.
-    What cardiosieve logs is counts, intervals, files and seconds: never a row value or a
-    patient identifier."""
+@contextmanager
+def cli_logging(verbose: bool = False, quiet: bool = False):
+    """While a command runs, log records of cardiosieve's modules also go to stderr, one plain
+    line each with its time (a terminal and a scheduler's log read the same). By default the
+    run's progress (a line per chunk, with the time left) and warnings; with --verbose
+    everything from DEBUG on (a line per stage, each table's row counts); with --quiet warnings
+    only. An error stays the one line main() prints. What cardiosieve logs is counts,
+    intervals, files and seconds: never a row value or a patient identifier. Undone afterwards,
+    so a program that calls main() keeps its own logging as it was."""
     logger = logging.getLogger("cardiosieve")
-    logger.setLevel(logging.DEBUG if verbose else logging.WARNING if quiet else logging.INFO)
-    if _LOG_HANDLER not in logger.handlers:
-        logger.addHandler(_LOG_HANDLER)
-    logger.propagate = False                   # not twice through a host application's root handler
+    level = logger.level
+    _LOG_HANDLER.setLevel(logging.DEBUG if verbose else logging.WARNING if quiet else logging.INFO)
+    _LOG_HANDLER.filters.clear()
+    if not verbose:                  # by default: the run's progress, and warnings from anywhere
+        _LOG_HANDLER.addFilter(lambda r: r.levelno >= logging.WARNING or r.name == PROGRESS_LOGGER)
+    logger.setLevel(min(_LOG_HANDLER.level, logger.getEffectiveLevel()))
+    logger.addHandler(_LOG_HANDLER)
+    try:
+        yield
+    finally:
+        logger.removeHandler(_LOG_HANDLER)
+        logger.setLevel(level)
 
 
 def _lake_args(p: argparse.ArgumentParser) -> None:
@@ -125,12 +138,12 @@ def _lake_args(p: argparse.ArgumentParser) -> None:
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
-    configure_logging(verbose=getattr(args, "verbose", False), quiet=getattr(args, "quiet", False))
     if getattr(args, "handler", None) is None:
         parser.print_help()
         return EXIT_BAD_INPUT
     try:
-        return args.handler(args) or EXIT_OK
+        with cli_logging(verbose=getattr(args, "verbose", False), quiet=getattr(args, "quiet", False)):
+            return args.handler(args) or EXIT_OK
     except BrokenPipeError:           # the reader (e.g. `| head`) closed the pipe: not an error
         import os
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())

@@ -349,9 +349,9 @@ def run_quality(tables: Mapping[str, pd.DataFrame], run_end, trailing_counts: Ma
         ge_results=ge_results, run_end=run_end,
         rows_in={t: len(present[t]) for t in catalogue if t in present})
     for table, n in result.rows_in.items():
-        log.debug("quality: table %s: %d rows in, %d rejected", table, n, n - len(clean[table]))
-    for line in critical:
-        log.warning("quality: critical: %s", line)
+        log.info("quality: table %s: %d rows in, %d rejected", table, n, n - len(clean[table]))
+    for line in critical:                  # the gate's error carries them too
+        log.debug("quality: critical: %s", line)
     return result
 
 

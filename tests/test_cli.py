@@ -329,6 +329,7 @@ def test_verbose_logs_each_stage_on_stderr_and_never_an_identifier(tmp_path, cap
     stages = [line.split("): ")[-1].split()[0] for line in captured.err.splitlines()
               if " DEBUG chunk 1/1 " in line]
     assert stages == ["load", "quality", "align", "screen", "quality_wait", "worklist"]
+    assert "INFO quality: table ecg: 1 rows in, 0 rejected" in captured.err
     assert "chunk 1/1 [2026-11-29 00:00, 2026-11-30 00:00): done, 1 ECGs screened" in captured.err
     assert "SECRET" not in captured.err + captured.out
     assert "screened: 1" in captured.out                 # the summary still goes to stdout
@@ -338,7 +339,8 @@ def test_default_logs_a_line_per_chunk_and_quiet_logs_nothing_on_success(tmp_pat
     lake = _secret_lake(tmp_path)
     assert main(["run", "--lake", str(lake), "--out", str(tmp_path / "a"), *ARGS]) == 0
     err = capsys.readouterr().err
-    assert " DEBUG " not in err and err.count(" INFO ") == 2     # the chunk done, the run published
+    assert " DEBUG " not in err and " WARNING " not in err and "quality: table" not in err
+    assert err.count(" INFO chunk 1/1 ") == 1 and err.count(" INFO run [") == 1 and len(err.splitlines()) == 2
     assert main(["-q", "run", "--lake", str(lake), "--out", str(tmp_path / "b"), *ARGS]) == 0
     assert capsys.readouterr() == ("", "")
     assert (tmp_path / "b" / "run_summary.json").exists()
