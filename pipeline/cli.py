@@ -66,6 +66,8 @@ def build_parser() -> argparse.ArgumentParser:
         commands = None
     if commands is not None:
         commands.register(sub)
+    from cardiosieve.pipeline import dbcommands          # db upgrade, db current (stdlib-only at import)
+    dbcommands.register(sub)
     return p
 
 
