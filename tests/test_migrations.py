@@ -100,6 +100,39 @@ def build_v2_store(url):
     return build_old_store(url, V2_DDL, V2_OUTCOMES, RENAMED)
 
 
+def build_store_at(url, revision):
+    """A store at `url` built by the migrations up to `revision` (an older schema to upgrade from,
+    for the test of a new migration), in one transaction as the store runs them."""
+    from alembic import command
+    from alembic.config import Config
+
+    engine = create_engine(url)
+    config = Config()
+    config.set_main_option("script_location", str(store.MIGRATIONS_DIR))
+    with engine.begin() as conn:
+        config.attributes["connection"] = conn
+        command.upgrade(config, revision)
+    return engine
+
+
+def describe(url):
+    """Each store table as the database reports it: columns (name, type, nullable), primary key,
+    foreign keys, indexes, unique and check constraint names."""
+    engine = create_engine(url)
+    with engine.connect() as conn:
+        have = inspect(conn)
+        tables = {name: {"columns": [(c["name"], str(c["type"]), c["nullable"]) for c in have.get_columns(name)],
+                         "pk": have.get_pk_constraint(name)["constrained_columns"],
+                         "fks": [(f["constrained_columns"], f["referred_table"], f["referred_columns"])
+                                 for f in have.get_foreign_keys(name)],
+                         "indexes": sorted((i["name"], tuple(i["column_names"])) for i in have.get_indexes(name)),
+                         "uniques": sorted(u["name"] for u in have.get_unique_constraints(name)),
+                         "checks": sorted(c["name"] for c in have.get_check_constraints(name))}
+                  for name in ("worklist_item", "review")}
+    engine.dispose()
+    return tables
+
+
 def snapshot(engine):
     """Everything a migration may touch: both tables' rows, the version row, the revision row,
     the outcome check and review's indexes and unique constraints; on SQLite every table's and
@@ -203,6 +236,17 @@ def test_opening_a_version_1_store_renames_outcomes_and_keeps_every_row(empty_ur
     with again.connect() as conn:
         assert conn.execute(review.select().where(review.c.item_id == i4)).one().review_id > 4
     again.dispose()
+
+
+def test_the_baseline_revision_builds_the_first_release_schema(empty_url, tmp_path):
+    # 0001 must make what the first release made (V1_DDL, written out from its code), so that
+    # a store stamped 0001 and one built through 0001 are upgraded by the same 0002.
+    build_store_at(empty_url, "0001").dispose()
+    built, check = describe(empty_url), look(empty_url)["checks"]["ck_review_outcome"]
+    drop_everything(empty_url)
+    build_v1_store(empty_url).dispose()
+    assert built == describe(empty_url)
+    assert "'confirmed'" in check and "'not_confirmed'" in check
 
 
 def test_a_failing_migration_leaves_the_version_1_store_as_it_was(empty_url, tmp_path, monkeypatch):
