@@ -487,7 +487,9 @@ def _upgrade(conn: Connection) -> str | None:
     another process has just upgraded is left alone. A store of an older release, without
     VERSION_TABLE, is first stamped at the revision its tables show (nothing else changes), then
     upgraded; an empty database runs every migration from 0001. Alembic is imported only here:
-    a store already current never pays for it."""
+    a store already current never pays for it. Alembic's `op` and `context` are module-level
+    proxies, so one process may run one migration at a time: the store's lock, taken before
+    this, gives that for threads too."""
     found, stamped = _found_revision(conn)
     if found == HEAD_REVISION and stamped:
         return found
