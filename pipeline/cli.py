@@ -73,6 +73,8 @@ def build_parser() -> argparse.ArgumentParser:
         commands = None
     if commands is not None:
         commands.register(sub)
+    from cardiosieve.pipeline import dbcommands          # db upgrade, db current (stdlib-only at import)
+    dbcommands.register(sub)
     for command in sub.choices.values():       # also after the command: `cardiosieve run ... -v`
         _verbosity_args(command, argparse.SUPPRESS)
     return p

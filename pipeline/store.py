@@ -3,11 +3,20 @@
 Tables
     worklist_item       one row per item (pipeline.worklist.ITEM_COLUMNS), primary key item_id
     review              one row per recorded review outcome; the latest review of an item closes it
-    cardiosieve_schema  one row: the schema version (SCHEMA_VERSION), written by open_store
+    cardiosieve_schema  one row: the schema version (SCHEMA_VERSION), set by each migration
+    cardiosieve_alembic_version  one row: the Alembic revision of the schema (VERSION_TABLE)
 
-Schema versions (open_store upgrades an older store in one transaction, see _upgrade)
-    1  before versioning: outcomes confirmed / not_confirmed (no cardiosieve_schema table)
-    2  outcomes renamed finding_real / finding_not_real (staff read "confirmed" as a signed report)
+Schema changes are Alembic migrations in pipeline/migrations/versions, one revision per schema
+version, the revision id the version in four digits:
+    0001  the baseline: outcomes confirmed / not_confirmed (the first release; no version tables)
+    0002  outcomes renamed finding_real / finding_not_real (staff read "confirmed" as a signed
+          report); creates cardiosieve_schema
+The nightly run (open_store with create=True) and `cardiosieve db upgrade` (upgrade_store)
+bring a store to HEAD_REVISION in one transaction under the store's lock (see _upgrade); a
+store of a release before the migrations is recognised by its tables and stamped first. The
+commands that only use a store (open_store with create=False) never change its schema: a store
+behind is a StoreSchemaError naming `cardiosieve db upgrade`. A store already current costs one
+look at VERSION_TABLE, and Alembic is not even imported.
 
 SQLite by default (OUT/worklist.sqlite, see sqlite_url), PostgreSQL through a
 `postgresql+psycopg://...` URL. Timestamps are stored in UTC (SQLite drops offsets, so UTC is
@@ -41,11 +50,10 @@ import numpy as np
 import pandas as pd
 from sqlalchemy import (CheckConstraint, Column, DateTime, Float, ForeignKey, Index, Integer, MetaData,
                         String, Table, Text, TypeDecorator, UniqueConstraint, bindparam, case,
-                        create_engine, delete, event, func, insert, inspect, select, update)
+                        column, create_engine, event, func, insert, inspect, select, table, update)
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.engine import URL, Connection, Engine, make_url
 from sqlalchemy.exc import ArgumentError, NoSuchModuleError
-from sqlalchemy.schema import AddConstraint, CreateTable, DropConstraint
 
 from cardiosieve.pipeline.errors import BadInputError
 from cardiosieve.pipeline.files import PRIVATE_FILE_MODE, write_atomic
@@ -168,7 +176,16 @@ review = Table(
     Index("ix_review_item", "item_id"),
 )
 
-SCHEMA_VERSION = 2   # bump with a new entry in MIGRATIONS (and a test from the old schema)
+# The schema's version. Each is one Alembic revision in pipeline/migrations/versions, its id the
+# version in four digits; a new one bumps this number (DEVELOPERS.md, "Changing the store's schema").
+SCHEMA_VERSION = 2
+HEAD_REVISION = f"{SCHEMA_VERSION:04d}"
+MIGRATIONS_DIR = Path(__file__).resolve().parent / "migrations"
+# Alembic's revision table. Not its default alembic_version: another application using Alembic
+# (Airflow does) may keep its own in the same database.
+VERSION_TABLE = "cardiosieve_alembic_version"
+# Read by the release before the migrations (it refuses a version it does not know); every
+# revision from 0002 on sets it to its own number.
 cardiosieve_schema = Table(
     "cardiosieve_schema", metadata,
     Column("id", Integer, primary_key=True, autoincrement=False),
@@ -282,15 +299,9 @@ def _translate_errors(busy_timeout_s: float):
     return hook
 
 
-def open_store(url: str, create: bool = True, busy_timeout_s: float | None = None) -> Engine:
-    """Engine for `url` (checked first, see check_store_url), with the tables created if absent
-    and an older store upgraded to SCHEMA_VERSION (see _upgrade). A store already at
-    SCHEMA_VERSION is only read: one look at cardiosieve_schema.
-
-    create: make the store if there is none (a new SQLite file is owner-only); False for the
-    commands that only use a store: no file, or a database without the store's tables, is then
-    a StoreUrlError. busy_timeout_s: SQLite's wait for another connection's lock (default
-    SQLITE_BUSY_TIMEOUT_S), after which a statement raises StoreLockedError."""
+def _engine(url: str, create: bool, busy_timeout_s: float | None) -> Engine:
+    """An engine for `url` (checked first, see check_store_url); with `create`, a SQLite file
+    that does not exist is made, empty and owner-only."""
     check_store_url(url, must_exist=not create)
     parsed = make_url(url)
     path = _sqlite_file(parsed)
@@ -303,13 +314,33 @@ def open_store(url: str, create: bool = True, busy_timeout_s: float | None = Non
     else:
         engine = create_engine(parsed)
     event.listen(engine, "handle_error", _translate_errors(busy))
+    return engine
+
+
+def open_store(url: str, create: bool = True, busy_timeout_s: float | None = None) -> Engine:
+    """Engine for `url` (checked first, see check_store_url), the store's schema at
+    HEAD_REVISION. A store already there is only read: one look at VERSION_TABLE.
+
+    create: the nightly run's open: make the store if there is none (a new SQLite file is
+    owner-only) and bring an older store to HEAD_REVISION (see _upgrade). False for the commands
+    that only use a store, which never change its schema: no file, or a database without the
+    store's tables, is a StoreUrlError, and a store behind this code a StoreSchemaError telling
+    the user to run `cardiosieve db upgrade` (a store of the release before the migrations, at
+    the current schema but not stamped yet, is used as it is). busy_timeout_s: SQLite's wait
+    for another connection's lock (default SQLITE_BUSY_TIMEOUT_S), after which a statement
+    raises StoreLockedError."""
+    engine = _engine(url, create, busy_timeout_s)
     try:
         with engine.connect() as conn:
-            stored = _stored_version(conn)
-        if stored is None and not create:
-            where = path if path is not None else "the database given"
-            raise StoreUrlError(f"no worklist store in {where} (it has none of cardiosieve's tables)")
-        if stored != SCHEMA_VERSION:
+            found, stamped = _found_revision(conn)
+        if found is None and not create:
+            raise StoreUrlError(f"no worklist store in {_where(engine)} (it has none of cardiosieve's tables)")
+        if found != HEAD_REVISION or (create and not stamped):
+            check_known_revision(found)
+            if not create:
+                raise StoreSchemaError(
+                    f"the worklist store in {_where(engine)} has schema revision {found} and this cardiosieve "
+                    f"needs {HEAD_REVISION}: back it up, then run `cardiosieve db upgrade {_store_option(engine)}`")
             with _schema_transaction(engine) as conn:
                 _upgrade(conn)
     except BaseException:
@@ -318,8 +349,56 @@ def open_store(url: str, create: bool = True, busy_timeout_s: float | None = Non
     return engine
 
 
+def upgrade_store(url: str, create: bool = False, busy_timeout_s: float | None = None) -> tuple[str | None, str]:
+    """`cardiosieve db upgrade`: bring the store at `url` to HEAD_REVISION (see _upgrade) and
+    return (revision before, revision after); None before means a new store. Without `create`
+    a store that does not exist is a StoreUrlError, as for the commands that only use a store
+    (a typo in the path must not make a store somewhere new)."""
+    engine = _engine(url, create, busy_timeout_s)
+    try:
+        with engine.connect() as conn:
+            found, _ = _found_revision(conn)
+        if found is None and not create:
+            raise StoreUrlError(f"no worklist store in {_where(engine)} (it has none of cardiosieve's tables; "
+                                f"give --create to make one)")
+        with _schema_transaction(engine) as conn:
+            before = _upgrade(conn)
+    finally:
+        engine.dispose()
+    return before, HEAD_REVISION
+
+
+def store_revision(url: str, busy_timeout_s: float | None = None) -> tuple[str, bool]:
+    """`cardiosieve db current`: the store's schema revision and whether it is recorded in
+    VERSION_TABLE (False: recognised from the tables of an older release); changes nothing.
+    A store that does not exist is a StoreUrlError."""
+    engine = _engine(url, False, busy_timeout_s)
+    try:
+        with engine.connect() as conn:
+            found, stamped = _found_revision(conn)
+    finally:
+        engine.dispose()
+    if found is None:
+        raise StoreUrlError(f"no worklist store in {_where(engine)} (it has none of cardiosieve's tables)")
+    return found, stamped
+
+
+def _where(engine: Engine) -> str:
+    """The store named for a message: its SQLite file, never a server URL (it may hold a password)."""
+    path = _sqlite_file(engine.url)
+    return str(path) if path is not None else "the database given"
+
+
+def _store_option(engine: Engine) -> str:
+    """How to name this store on the command line, for a message."""
+    path = _sqlite_file(engine.url)
+    if path is None:
+        return "--db URL"
+    return f"--out {path.parent}" if path.name == "worklist.sqlite" else f"--db sqlite:///{path}"
+
+
 # ---------------------------------------------------------------------------------------------
-# Schema version and migrations
+# Schema revisions and migrations (Alembic, pipeline/migrations)
 # ---------------------------------------------------------------------------------------------
 # Key of the PostgreSQL advisory lock held while the schema is checked and upgraded, so that two
 # processes opening an old store at once migrate it once (any fixed 64-bit number: "cardsiev").
@@ -328,19 +407,44 @@ _PG_SCHEMA_LOCK = 0x63617264_73696576
 # time, as SQLite's BEGIN IMMEDIATE gives. Row locks alone are not enough: the upsert and a review
 # each re-rank the whole table, so each would hold rows the other waits for (a deadlock).
 _PG_WRITE_LOCK = 0x63617264_77726974
+_version_table = table(VERSION_TABLE, column("version_num"))
 
 
-def _stored_version(conn: Connection) -> int | None:
-    """The store's schema version: the cardiosieve_schema row; 1 for a store made before
-    versioning (it has our tables but no version row); None for an empty database."""
+def _found_revision(conn: Connection) -> tuple[str | None, bool]:
+    """(revision, stamped): the revision in VERSION_TABLE (stamped True); else the one the
+    tables of an older release show (stamped False): cardiosieve_schema's version as its
+    revision, "0001" for a store made before versioning (our tables, no version table);
+    (None, False) for a database without the store's tables."""
     have = inspect(conn)
+    if have.has_table(VERSION_TABLE):
+        found = conn.execute(select(_version_table.c.version_num)).scalars().all()
+        if len(found) > 1:
+            raise StoreSchemaError(f"{VERSION_TABLE} holds {len(found)} revisions; cardiosieve's history has "
+                                   f"one line: restore the store from its backup")
+        if found:
+            return str(found[0]), True
     if have.has_table(cardiosieve_schema.name):
-        found = conn.execute(select(cardiosieve_schema.c.version)).scalar()
-        if found is not None:
-            return int(found)
+        version = conn.execute(select(cardiosieve_schema.c.version)).scalar()
+        if version is not None:
+            return _revision_of(int(version)), False
+    if have.has_table(review.name) and have.has_table(worklist_item.name):
+        return _revision_of(1), False
     if have.has_table(review.name) or have.has_table(worklist_item.name):
-        return 1
-    return None
+        raise StoreSchemaError("the database has one of the store's tables (worklist_item, review) but not "
+                               "the other: not a store cardiosieve can use or upgrade")
+    return None, False
+
+
+def _revision_of(version: int) -> str:
+    """Revision ids are schema versions written with four digits: version 2 is "0002"."""
+    return f"{version:04d}"
+
+
+def check_known_revision(found: str | None) -> None:
+    """StoreSchemaError for a revision this code does not know (a later release's)."""
+    if found is not None and (not found.isdigit() or int(found) > SCHEMA_VERSION):
+        raise StoreSchemaError(f"store schema revision {found} is newer than this cardiosieve "
+                               f"(revision {HEAD_REVISION}): upgrade cardiosieve")
 
 
 @contextmanager
@@ -373,86 +477,35 @@ def _write_transaction(engine: Engine, pg_lock: int | None = _PG_WRITE_LOCK):
 
 def _schema_transaction(engine: Engine):
     """One transaction for a schema change, DDL included, holding the store's write lock from
-    before the version is read (a second process waits, then finds the store current)."""
+    before the revision is read (a second process waits, then finds the store current)."""
     return _write_transaction(engine, pg_lock=_PG_SCHEMA_LOCK)
 
 
-def _upgrade(conn: Connection) -> None:
-    """Bring the store to SCHEMA_VERSION inside the caller's transaction: create an empty store,
-    or run each migration from the stored version on, then create any missing table and record
-    the version. Re-reads the version under the lock, so a store another process has just
-    upgraded is left alone."""
-    found = _stored_version(conn)
-    if found == SCHEMA_VERSION:
-        return
-    if found is not None and found > SCHEMA_VERSION:
-        raise StoreSchemaError(f"store schema version {found} is newer than this cardiosieve "
-                               f"(version {SCHEMA_VERSION}): upgrade cardiosieve")
-    if found is not None:                  # an empty database needs only create_all
-        for version in range(found, SCHEMA_VERSION):
-            MIGRATIONS[version](conn)
-    metadata.create_all(conn)
-    conn.execute(delete(cardiosieve_schema))
-    conn.execute(insert(cardiosieve_schema).values(id=1, version=SCHEMA_VERSION))
+def _upgrade(conn: Connection) -> str | None:
+    """Bring the store to HEAD_REVISION inside the caller's schema transaction and return the
+    revision it had (None: an empty database). Re-reads the revision under the lock, so a store
+    another process has just upgraded is left alone. A store of an older release, without
+    VERSION_TABLE, is first stamped at the revision its tables show (nothing else changes), then
+    upgraded; an empty database runs every migration from 0001. Alembic is imported only here:
+    a store already current never pays for it. Alembic's `op` and `context` are module-level
+    proxies, so one process may run one migration at a time: the store's lock, taken before
+    this, gives that for threads too."""
+    found, stamped = _found_revision(conn)
+    if found == HEAD_REVISION and stamped:
+        return found
+    check_known_revision(found)
+    from alembic import command
+    from alembic.config import Config
 
-
-def _row_counts(conn: Connection, tables) -> dict:
-    return {t.name: conn.execute(select(func.count()).select_from(t)).scalar() for t in tables}
-
-
-def _migrate_1_to_2(conn: Connection) -> None:
-    """Outcomes confirmed -> finding_real, not_confirmed -> finding_not_real (LEGACY_OUTCOMES):
-    stored reviews, the ck_review_outcome constraint (old set -> OUTCOMES) and the
-    "reviewed: <outcome>" reason of closed items. Row counts must match before and after."""
-    have = inspect(conn)
-    tables = [t for t in (worklist_item, review) if have.has_table(t.name)]
-    before = _row_counts(conn, tables)
-    if review in tables:
-        renamed = case(LEGACY_OUTCOMES, value=review.c.outcome, else_=review.c.outcome)
-        if conn.dialect.name == "sqlite":
-            _rebuild_sqlite_review(conn, renamed)
-        else:
-            ck = next(c for c in review.constraints if c.name == "ck_review_outcome")
-            conn.execute(DropConstraint(ck, if_exists=True))
-            conn.execute(update(review).where(review.c.outcome.in_(list(LEGACY_OUTCOMES)))
-                         .values(outcome=renamed))
-            conn.execute(AddConstraint(ck))
-    if worklist_item in tables:
-        t = worklist_item
-        reasons = {REVIEWED_REASON.format(old): REVIEWED_REASON.format(new)
-                   for old, new in LEGACY_OUTCOMES.items()}
-        conn.execute(update(t).where(t.c.status_reason.in_(list(reasons)))
-                     .values(status_reason=case(reasons, value=t.c.status_reason)))
-    after = _row_counts(conn, tables)
-    if after != before:
-        raise StoreSchemaError(f"schema migration 1 -> 2 changed row counts {before} -> {after}: rolled back")
-    if review in tables:
-        left = conn.execute(select(func.count()).select_from(review)
-                            .where(review.c.outcome.in_(list(LEGACY_OUTCOMES)))).scalar()
-        if left:
-            raise StoreSchemaError(f"schema migration 1 -> 2 left {left} review row(s) with old outcomes: "
-                                   "rolled back")
-
-
-def _rebuild_sqlite_review(conn: Connection, outcome_expr) -> None:
-    """SQLite cannot alter a CHECK constraint: rebuild `review` the documented way (sqlite.org,
-    ALTER TABLE, "other kinds of table schema changes"): create the new table under another
-    name, copy every row (review_id kept, outcomes renamed), drop the old table, rename, recreate
-    the indexes. Nothing refers to `review`, so the foreign key setting does not matter."""
-    scratch = MetaData()
-    worklist_item.to_metadata(scratch)   # the copy's foreign key needs its target table
-    staged = review.to_metadata(scratch, name="review_migrating")
-    conn.execute(CreateTable(staged))
-    names = [c.name for c in review.columns]
-    picked = [outcome_expr.label("outcome") if n == "outcome" else review.c[n] for n in names]
-    conn.execute(insert(staged).from_select(names, select(*picked)))
-    conn.exec_driver_sql('DROP TABLE "review"')
-    conn.exec_driver_sql('ALTER TABLE "review_migrating" RENAME TO "review"')
-    for index in review.indexes:
-        index.create(conn)
-
-
-MIGRATIONS = {1: _migrate_1_to_2}   # version -> function taking the store to version + 1
+    config = Config()
+    config.set_main_option("script_location", str(MIGRATIONS_DIR))
+    config.attributes["connection"] = conn      # env.py runs on it, inside this transaction
+    if found is not None and not stamped:
+        command.stamp(config, found)
+    command.upgrade(config, "head")
+    if _found_revision(conn) != (HEAD_REVISION, True):
+        raise StoreSchemaError(f"the migrations did not bring the store to revision {HEAD_REVISION}: rolled back")
+    return found
 
 
 def _records(df: pd.DataFrame) -> list[dict]:

@@ -1,6 +1,8 @@
 """The built wheel installs everything under the `cardiosieve` namespace, so a package of
 another project that owns a top-level `pipeline` (or `screens`) cannot break it: the wheel is
-installed into a clean venv beside such a package and `cardiosieve run` screens the sample lake.
+installed into a clean venv beside such a package and `cardiosieve run` screens the sample lake;
+the store's migrations ship in it (`run` builds its store with them, `db upgrade --create` a new
+one, `db current` reads the revision).
 The venv reuses this environment's installed dependencies (a path file), not the network."""
 from __future__ import annotations
 
@@ -34,6 +36,9 @@ def test_the_wheel_installs_under_its_namespace_beside_a_top_level_pipeline_pack
     assert {n.split("/")[0] for n in names} == {"cardiosieve", wheel.name.split("-")[0] + "-" + wheel.name.split("-")[1]
                                                 + ".dist-info"}
     assert "cardiosieve/screens/rules.toml" in names and "cardiosieve/pipeline/cli.py" in names
+    migrations = sorted(p.relative_to(ROOT / "pipeline").as_posix() for p in (ROOT / "pipeline" / "migrations").rglob("*.py"))
+    assert "migrations/env.py" in migrations and "migrations/versions/0001_baseline.py" in migrations
+    assert {f"cardiosieve/pipeline/{m}" for m in migrations} <= set(names)
 
     venv = tmp_path / "venv"
     assert _run([sys.executable, "-m", "venv", venv], cwd=tmp_path).returncode == 0
@@ -55,6 +60,14 @@ def test_the_wheel_installs_under_its_namespace_beside_a_top_level_pipeline_pack
     assert where.stdout.strip().startswith(str(site / "cardiosieve" / "pipeline"))   # the wheel's, not the source's
     clash = _run([py, "-c", "import pipeline"], cwd=tmp_path, env=env)
     assert "this is another project" in clash.stderr                                # and the other one is intact
+
+    from cardiosieve.pipeline.store import HEAD_REVISION
+    current = _run([venv / "bin" / "cardiosieve", "db", "current", "--out", tmp_path / "out"], cwd=tmp_path, env=env)
+    assert (current.returncode, current.stdout) == (0, f"{HEAD_REVISION} (current)\n"), current.stderr[-1500:]
+    made = _run([venv / "bin" / "cardiosieve", "db", "upgrade", "--create", "--db", f"sqlite:///{tmp_path / 'new.sqlite'}"],
+                cwd=tmp_path, env=env)
+    assert (made.returncode, made.stdout) == (0, f"worklist store created at schema revision {HEAD_REVISION}\n"), \
+        made.stderr[-1500:]
 
 
 def test_no_module_imports_the_old_top_level_names():

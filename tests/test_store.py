@@ -1,4 +1,4 @@
-"""The worklist in SQL: upsert, reopen rule, reviews, CSV import, yield, export.
+"""The worklist in SQL: upsert, reopen rule, reviews, CSV import, yield, export, schema migrations.
 
 SQLite always; PostgreSQL when CARDIOSIEVE_TEST_PG_URL is set (.ci/run starts a throwaway
 server and sets it, e.g. postgresql+psycopg://cardiosieve@127.0.0.1:PORT/cardiosieve_test)."""
@@ -12,11 +12,10 @@ import time
 import numpy as np
 import pandas as pd
 import pytest
-from sqlalchemy import create_engine, insert, inspect, text
-from sqlalchemy.exc import IntegrityError
+from sqlalchemy import create_engine, text
 
 from cardiosieve.pipeline import store
-from cardiosieve.pipeline.store import (OUTCOMES, SCHEMA_VERSION, StoreLockedError, StoreSchemaError, StoreUrlError,
+from cardiosieve.pipeline.store import (HEAD_REVISION, SCHEMA_VERSION, VERSION_TABLE, StoreLockedError, StoreUrlError,
                             cardiosieve_schema, check_store_url, export_items, import_reviews_csv, metadata,
                             open_store, read_items, record_review, review, upsert_items, wilson_interval,
                             worklist_item, yield_table)
@@ -55,9 +54,12 @@ def night(engine, rows, now=NIGHT1, run_id="run-1"):
 
 
 def drop_everything(url):
-    """Drop the store's tables at `url` (the PostgreSQL tests share one database)."""
+    """Drop the store's tables and its revision table at `url` (the PostgreSQL tests share one
+    database)."""
     e = create_engine(url)
     metadata.drop_all(e)
+    with e.begin() as conn:
+        conn.exec_driver_sql(f"DROP TABLE IF EXISTS {VERSION_TABLE}")
     e.dispose()
 
 
@@ -76,8 +78,8 @@ def sqlite_engine(tmp_path):
 def pg_engine():
     engine = fresh(PG_URL)
     yield engine
-    metadata.drop_all(engine)
     engine.dispose()
+    drop_everything(PG_URL)
 
 
 @pytest.fixture(params=["sqlite", pytest.param("postgresql", marks=needs_pg)])
@@ -87,8 +89,8 @@ def engine(request, tmp_path):
     else:
         e = fresh(PG_URL)
         yield e
-        metadata.drop_all(e)
         e.dispose()
+        drop_everything(PG_URL)
 
 
 def table(engine):
@@ -108,6 +110,7 @@ def test_open_store_creates_sqlite_file_and_tables(tmp_path):
     assert read_items(engine).empty
     with engine.connect() as conn:
         assert conn.execute(cardiosieve_schema.select()).all() == [(1, SCHEMA_VERSION)]
+        assert conn.exec_driver_sql(f"SELECT version_num FROM {VERSION_TABLE}").all() == [(HEAD_REVISION,)]
 
 
 # --- opening: URL, folder, file, permissions, locks ----------------------------------------------
@@ -499,227 +502,6 @@ def test_export_leaves_ordinary_text_alone(engine, summary):
 def test_export_refuses_unknown_format(sqlite_engine):
     with pytest.raises(ValueError, match="format"):
         export_items(sqlite_engine, "xlsx", io.StringIO())
-
-
-# --- schema migration 1 -> 2 (outcomes renamed) ---------------------------------------------------
-# The store as the code before schema versioning created it (no cardiosieve_schema table; the
-# outcome check names confirmed / not_confirmed), written out by hand so that it stays frozen
-# whatever the current metadata becomes. {ts} and {serial} are the dialect's types.
-V1_DDL = [
-    """CREATE TABLE worklist_item (
-        item_id VARCHAR(40) NOT NULL, rank INTEGER, tier INTEGER NOT NULL, screen VARCHAR(64) NOT NULL,
-        patient_id TEXT NOT NULL, ecg_id TEXT NOT NULL, ecg_at {ts} NOT NULL, score FLOAT NOT NULL,
-        summary TEXT, evidence TEXT, caveats TEXT, territories TEXT, rule_version VARCHAR(64),
-        run_id VARCHAR(128), first_flagged_at {ts} NOT NULL, status VARCHAR(16) NOT NULL,
-        last_updated_at {ts} NOT NULL, status_reason TEXT, episode_start {ts} NOT NULL,
-        episode_end {ts} NOT NULL, other_ecg_ids TEXT, score_parts TEXT,
-        PRIMARY KEY (item_id),
-        CONSTRAINT ck_worklist_item_status CHECK (status IN ('open', 'reopened', 'explained', 'closed')),
-        CONSTRAINT ck_worklist_item_tier CHECK (tier BETWEEN 1 AND 4))""",
-    "CREATE INDEX ix_worklist_item_rank ON worklist_item (rank)",
-    "CREATE INDEX ix_worklist_item_patient_screen ON worklist_item (patient_id, screen)",
-    """CREATE TABLE review (
-        review_id {serial} NOT NULL, item_id VARCHAR(40) NOT NULL, reviewed_at {ts} NOT NULL,
-        reviewer_role VARCHAR(128) NOT NULL, outcome VARCHAR(16) NOT NULL, note TEXT,
-        recorded_via VARCHAR(16) NOT NULL,
-        PRIMARY KEY (review_id),
-        CONSTRAINT ck_review_outcome CHECK (outcome IN ('confirmed', 'not_confirmed', 'already_known', 'data_problem')),
-        CONSTRAINT uq_review_entry UNIQUE (item_id, reviewed_at, reviewer_role),
-        FOREIGN KEY(item_id) REFERENCES worklist_item (item_id))""",
-    "CREATE INDEX ix_review_item ON review (item_id)",
-]
-V1_TYPES = {"sqlite": {"ts": "DATETIME", "serial": "INTEGER"},
-            "postgresql": {"ts": "TIMESTAMP WITH TIME ZONE", "serial": "SERIAL"}}
-# Four tier-2 hyperkalemia items; i1 to i3 reviewed (i2 twice, latest counts), i4 still open.
-V1_FINDINGS = [finding(f"e{i}", f"p{i}", "2026-03-01 20:00", tier=2) for i in range(1, 5)]
-V1_REVIEWS = [   # (item, hours after NIGHT1, role, outcome, note)
-    ("e1", 6, "registrar", "confirmed", None),
-    ("e2", 6, "registrar", "data_problem", None),
-    ("e2", 7, "consultant", "not_confirmed", "not confirmed on the repeat ECG"),   # note text stays
-    ("e3", 6, "registrar", "already_known", None),
-]
-RENAMED = {"confirmed": "finding_real", "not_confirmed": "finding_not_real"}
-
-
-def build_v1_store(url):
-    """A version-1 store at `url` holding items, closed items and reviews with the old outcomes."""
-    engine = create_engine(url)
-    types = V1_TYPES[engine.dialect.name]
-    with engine.begin() as conn:
-        for ddl in V1_DDL:
-            conn.exec_driver_sql(ddl.format(**types))
-    items, _ = night(engine, V1_FINDINGS)   # worklist_item's columns are unchanged in version 2
-    ids = items.set_index("ecg_id")["item_id"]
-    rows = [{"item_id": ids[e], "reviewed_at": NIGHT1 + pd.Timedelta(hours=h), "reviewer_role": role,
-             "outcome": outcome, "note": note, "recorded_via": "cli"} for e, h, role, outcome, note in V1_REVIEWS]
-    latest = {r["item_id"]: r for r in rows}
-    with engine.begin() as conn:
-        conn.execute(insert(review), rows)   # the Table object checks nothing: the old CHECK does
-        for iid, r in latest.items():
-            conn.execute(worklist_item.update().where(worklist_item.c.item_id == iid).values(
-                status=STATUS_CLOSED, status_reason=f"reviewed: {r['outcome']}", last_updated_at=r["reviewed_at"]))
-    return engine
-
-
-def snapshot(engine):
-    """Everything a migration may touch: both tables' rows, the version row, the outcome check
-    and review's indexes and unique constraints."""
-    with engine.connect() as conn:
-        reviews = pd.DataFrame(conn.execute(review.select().order_by(review.c.review_id)).mappings().all())
-        have = inspect(conn)
-        version = (conn.execute(cardiosieve_schema.select()).all()
-                   if have.has_table("cardiosieve_schema") else None)
-        checks = {c["name"]: " ".join(str(c["sqltext"]).split()) for c in have.get_check_constraints("review")}
-        indexes = sorted(i["name"] for i in have.get_indexes("review"))
-        uniques = sorted(u["name"] for u in have.get_unique_constraints("review"))
-    return {"items": table(engine), "reviews": reviews, "version": version, "checks": checks,
-            "indexes": indexes, "uniques": uniques}
-
-
-@pytest.fixture(params=["sqlite", pytest.param("postgresql", marks=needs_pg)])
-def empty_url(request, tmp_path):
-    """A database URL with none of the store's tables."""
-    if request.param == "sqlite":
-        yield f"sqlite:///{tmp_path / 'worklist.sqlite'}"
-    else:
-        drop_everything(PG_URL)
-        yield PG_URL
-        drop_everything(PG_URL)
-
-
-def test_opening_a_version_1_store_renames_outcomes_and_keeps_every_row(empty_url):
-    old = build_v1_store(empty_url)
-    before = snapshot(old)
-    old.dispose()
-    assert before["version"] is None and len(before["reviews"]) == 4 and len(before["items"]) == 4
-    assert "'confirmed'" in before["checks"]["ck_review_outcome"]
-
-    engine = open_store(empty_url)
-    after = snapshot(engine)
-    expected_reviews = before["reviews"].assign(outcome=before["reviews"]["outcome"].replace(RENAMED))
-    pd.testing.assert_frame_equal(after["reviews"], expected_reviews)   # same ids, times, notes
-    expected_items = before["items"].assign(status_reason=before["items"]["status_reason"].replace(
-        {f"reviewed: {o}": f"reviewed: {n}" for o, n in RENAMED.items()}))
-    pd.testing.assert_frame_equal(after["items"], expected_items)
-    assert sorted(after["items"]["status_reason"].dropna()) == [
-        "reviewed: already_known", "reviewed: finding_not_real", "reviewed: finding_real"]
-    assert after["version"] == [(1, SCHEMA_VERSION)]
-    check = after["checks"]["ck_review_outcome"]
-    assert all(f"'{o}'" in check for o in OUTCOMES) and "'confirmed'" not in check and "'not_confirmed'" not in check
-    assert (after["indexes"], after["uniques"]) == (before["indexes"], before["uniques"])
-
-    # The new check refuses the old words written straight into the table, and takes the new
-    # ones (finding_not_real is 16 characters, the width of the column).
-    sneak = {"item_id": after["items"]["item_id"][0], "reviewed_at": NIGHT2, "reviewer_role": "direct",
-             "recorded_via": "cli"}
-    for word in ("confirmed", "not_confirmed"):
-        with pytest.raises(IntegrityError), engine.begin() as conn:
-            conn.execute(insert(review).values(**sneak, outcome=word))
-    with engine.connect() as conn:
-        conn.execute(insert(review).values(**sneak, outcome="finding_not_real"))
-        conn.rollback()
-
-    # PPV as before the rename: (finding_real 1 + already_known 1) / reviewed 3, by each item's latest review.
-    hk = yield_table(engine).set_index(["screen", "tier"]).loc[("hyperkalemia", 2)]
-    assert (hk["items"], hk["reviewed"], hk["finding_real"], hk["already_known"], hk["finding_not_real"],
-            hk["data_problem"]) == (4, 3, 1, 1, 1, 0)
-    assert hk["ppv"] == pytest.approx(2 / 3)
-
-    # A second open finds version 2 and changes nothing.
-    engine.dispose()
-    again = open_store(empty_url)
-    second = snapshot(again)
-    for key, value in after.items():
-        if isinstance(value, pd.DataFrame):
-            pd.testing.assert_frame_equal(second[key], value)
-        else:
-            assert second[key] == value, key
-
-    # The migrated store keeps working: a new review gets a new id (PostgreSQL's sequence has
-    # also spent numbers on the refused inserts above, so only "above the old ones" is checked).
-    i4 = after["items"].set_index("ecg_id").loc["e4", "item_id"]
-    assert record_review(again, i4, "finding_real", "registrar", None, NIGHT2)
-    with again.connect() as conn:
-        assert conn.execute(review.select().where(review.c.item_id == i4)).one().review_id > 4
-    again.dispose()
-
-
-def test_a_failing_migration_leaves_the_version_1_store_as_it_was(empty_url, monkeypatch):
-    # Make the final row-count check fail after the rewrites (and, on SQLite, the table rebuild)
-    # have run: the one transaction must roll all of it back, DDL included.
-    old = build_v1_store(empty_url)
-    before = snapshot(old)
-    old.dispose()
-    real = store._row_counts
-    calls = []
-
-    def miscount(conn, tables):
-        calls.append(1)
-        counts = real(conn, tables)
-        return counts if len(calls) == 1 else {**counts, "review": counts["review"] - 1}
-
-    monkeypatch.setattr(store, "_row_counts", miscount)
-    with pytest.raises(StoreSchemaError, match="row counts"):
-        open_store(empty_url)
-    untouched = create_engine(empty_url)
-    left = snapshot(untouched)
-    with untouched.connect() as conn:
-        assert not inspect(conn).has_table("review_migrating")
-    untouched.dispose()
-    for key, value in before.items():
-        if isinstance(value, pd.DataFrame):
-            pd.testing.assert_frame_equal(left[key], value)
-        else:
-            assert left[key] == value, key
-
-    monkeypatch.setattr(store, "_row_counts", real)
-    migrated = open_store(empty_url)
-    assert snapshot(migrated)["version"] == [(1, SCHEMA_VERSION)]
-    migrated.dispose()
-
-
-def test_processes_opening_a_version_1_store_at_once_migrate_it_once(empty_url):
-    import threading
-
-    build_v1_store(empty_url).dispose()
-    start, errors, engines = threading.Barrier(4), [], []
-
-    def opener():
-        start.wait()
-        try:
-            engines.append(open_store(empty_url))
-        except Exception as exc:   # collected: an exception in a thread would not fail the test
-            errors.append(exc)
-
-    threads = [threading.Thread(target=opener) for _ in range(4)]
-    for t in threads:
-        t.start()
-    for t in threads:
-        t.join()
-    assert errors == []
-    assert [o for _, o in stored_outcomes(engines[0])] == [
-        "finding_real", "data_problem", "finding_not_real", "already_known"]
-    for e in engines:
-        e.dispose()
-
-
-def test_commands_that_only_use_a_store_never_make_one(empty_url, tmp_path):
-    with pytest.raises(StoreUrlError, match="no worklist"):
-        open_store(empty_url, create=False)
-    assert not (tmp_path / "worklist.sqlite").exists()
-    check = create_engine(empty_url)
-    with check.connect() as conn:
-        assert not inspect(conn).has_table("worklist_item")
-    check.dispose()
-
-
-def test_a_store_from_newer_code_is_refused(empty_url):
-    engine = open_store(empty_url)
-    with engine.begin() as conn:
-        conn.execute(cardiosieve_schema.update().values(version=SCHEMA_VERSION + 1))
-    engine.dispose()
-    with pytest.raises(StoreSchemaError, match="newer"):
-        open_store(empty_url)
 
 
 def test_a_review_during_the_nightly_upsert_is_never_overwritten(engine, monkeypatch):
