@@ -1,4 +1,7 @@
-"""cardiosieve nightly screening as an Airflow 3 DAG: wiring only, the work is in pipeline/run.py.
+"""cardiosieve nightly screening as an Airflow 3 DAG factory: wiring only, the work is in pipeline/run.py.
+
+`make_dag()` returns the DAG; a DAGs folder holds a two-line file that calls it
+(dags/cardiosieve_nightly.py). Importing this module creates no DAG.
 
 Each run screens the ECGs acquired in its data interval [start, end) (UTC). By default the interval
 is one UTC calendar day, [D-1 00:00, D 00:00), the same days as the lake's ecg/date=... partitions;
@@ -15,8 +18,8 @@ else (a flaky mount, a database that is briefly away, OUT or the store held by a
 run: each task holds the run lock for its stage) is retried with exponential back-off.
 
 Nothing here reads files, the network or the Airflow database at parse time: module level reads
-only environment variables, and pandas, Great Expectations and pipeline/ are imported inside the
-tasks. See docs/airflow.md for deployment, Params and backfills.
+only environment variables, and pandas, Great Expectations and cardiosieve.pipeline are imported
+inside the tasks. See docs/airflow.md for deployment, Params and backfills.
 """
 from __future__ import annotations
 
@@ -24,10 +27,11 @@ import os
 from datetime import timedelta
 
 import pendulum
-from airflow.sdk import Asset, BaseSensorOperator, CronDataIntervalTimetable, Param, dag, task
+from airflow.sdk import DAG, Asset, BaseSensorOperator, CronDataIntervalTimetable, Param, task
 
 DAG_ID = "cardiosieve_nightly"
-# Deployment settings read from the environment at parse time (no I/O); docs/airflow.md lists them.
+# Deployment settings read from the environment when this module is imported (no I/O); they are
+# the defaults of make_dag's arguments. docs/airflow.md lists them.
 SCHEDULE_CRON = os.environ.get("CARDIOSIEVE_CRON", "0 0 * * *")          # interval bounds: UTC midnights
 SCHEDULE_TIMEZONE = os.environ.get("CARDIOSIEVE_TIMEZONE", "UTC")
 START_DATE = pendulum.parse(os.environ.get("CARDIOSIEVE_START_DATE", "2026-01-01T00:00:00Z"))
@@ -45,33 +49,45 @@ MAX_RETRY_DELAY = timedelta(minutes=30)
 TASK_TIMEOUT = timedelta(hours=2)      # a hung mount must not hold a worker slot all day
 POKE_INTERVAL = timedelta(minutes=10)
 
-PARAMS = {
-    "lake": Param(os.environ.get("CARDIOSIEVE_LAKE", "/data/lake"), type="string", minLength=1,
-                  description="Lake folder holding ecg/, ecg_lead/, lab/, patient/ (and optionally medication/)."),
-    "out": Param(os.environ.get("CARDIOSIEVE_OUT", "/data/cardiosieve"), type="string", minLength=1,
-                 description="Output folder: worklist.parquet, rejects.parquet, quality report, run summary."),
-    "config": Param(os.environ.get("CARDIOSIEVE_CONFIG", ""), type="string",
-                    description="Site configuration (TOML, docs/configuration.md); empty = built-in defaults."),
-    "db": Param("", type="string",
-                description="SQLAlchemy URL of the worklist database; empty = sqlite at OUT/worklist.sqlite "
-                            "(or the connection below). Put credentials in a connection, not here."),
-    "db_conn_id": Param(os.environ.get("CARDIOSIEVE_DB_CONN_ID", ""), type="string",
-                        description="Airflow connection (postgres or sqlite) holding the worklist database; "
-                                    "used when `db` is empty."),
-    "start": Param(None, type=["null", "string"],
-                   description="Explicit first instant screened (ISO 8601, UTC when no offset); with `end` it "
-                               "overrides the run's data interval. Needed for runs without one."),
-    "end": Param(None, type=["null", "string"], description="Explicit end of the interval, excluded."),
-    "settle_min": Param(120, type="integer", minimum=0, maximum=1440,
-                        description="Minutes after the interval's end before the exports count as landed "
-                                    "(late rows still arriving); 0 with a landing marker."),
-    "landing_timeout_min": Param(360, type="integer", minimum=0, maximum=2880,
-                                 description="Minutes after interval end + settle_min to wait for the "
-                                             "exports before failing."),
-    "landing_marker": Param("", type="string",
-                            description="File name the exporter writes into a partition when it is "
-                                        "complete (e.g. _SUCCESS); empty = any Parquet file counts."),
-}
+
+def make_params(**defaults) -> dict[str, Param]:
+    """The DAG's Params, fresh objects on every call; `defaults` replaces the default of a Param
+    by name (an unknown name is a TypeError, so a typo cannot pass unnoticed)."""
+    env = os.environ.get
+    spec = {
+        "lake": (env("CARDIOSIEVE_LAKE", "/data/lake"), dict(type="string", minLength=1,
+                 description="Lake folder holding ecg/, ecg_lead/, lab/, patient/ (and optionally medication/).")),
+        "out": (env("CARDIOSIEVE_OUT", "/data/cardiosieve"), dict(type="string", minLength=1,
+                description="Output folder: worklist.parquet, rejects.parquet, quality report, run summary.")),
+        "config": (env("CARDIOSIEVE_CONFIG", ""), dict(type="string",
+                   description="Site configuration (TOML, docs/configuration.md); empty = built-in defaults.")),
+        "db": ("", dict(type="string",
+               description="SQLAlchemy URL of the worklist database; empty = sqlite at OUT/worklist.sqlite "
+                           "(or the connection below). Put credentials in a connection, not here.")),
+        "db_conn_id": (env("CARDIOSIEVE_DB_CONN_ID", ""), dict(type="string",
+                       description="Airflow connection (postgres or sqlite) holding the worklist database; "
+                                   "used when `db` is empty.")),
+        "start": (None, dict(type=["null", "string"],
+                  description="Explicit first instant screened (ISO 8601, UTC when no offset); with `end` it "
+                              "overrides the run's data interval. Needed for runs without one.")),
+        "end": (None, dict(type=["null", "string"], description="Explicit end of the interval, excluded.")),
+        "settle_min": (120, dict(type="integer", minimum=0, maximum=1440,
+                       description="Minutes after the interval's end before the exports count as landed "
+                                   "(late rows still arriving); 0 with a landing marker.")),
+        "landing_timeout_min": (360, dict(type="integer", minimum=0, maximum=2880,
+                                description="Minutes after interval end + settle_min to wait for the "
+                                            "exports before failing.")),
+        "landing_marker": ("", dict(type="string",
+                           description="File name the exporter writes into a partition when it is "
+                                       "complete (e.g. _SUCCESS); empty = any Parquet file counts.")),
+    }
+    unknown = sorted(set(defaults) - set(spec))
+    if unknown:
+        raise TypeError(f"make_dag: unknown Param(s) {', '.join(unknown)}; known: {', '.join(spec)}")
+    return {name: Param(defaults.get(name, default), **kw) for name, (default, kw) in spec.items()}
+
+
+PARAMS = make_params()       # the defaults, for reading; make_dag builds its own
 
 
 # ---------------------------------------------------------------------------------------------
@@ -142,33 +158,6 @@ def run_interval_bounds(context) -> tuple[str, str]:
     return lo.isoformat(), hi.isoformat()
 
 
-def missing_exports(lake: str, start: str, end: str, marker: str = "") -> list[str]:
-    """Folders (relative to the lake) whose night's ECG export has not landed, [] when it has.
-
-    A date-partitioned lake needs ecg/date=YYYY-MM-DD/ for every UTC day that [start, end)
-    touches, holding a Parquet file (or `marker`, when given); an unpartitioned ecg/ folder
-    counts as landed when it holds a Parquet file (it cannot tell one night from another)."""
-    from pathlib import Path
-
-    import pandas as pd
-
-    root = Path(lake) / "ecg"
-    if not root.is_dir():
-        return ["ecg/"]
-    lo, hi = pd.Timestamp(start), pd.Timestamp(end)
-    days = pd.date_range(lo.floor("D"), (hi - pd.Timedelta(microseconds=1)).floor("D"), freq="D")
-    partitioned = any(p.name.startswith("date=") for p in root.iterdir() if p.is_dir())
-    if not partitioned:
-        return [] if any(root.glob("*.parquet")) else ["ecg/"]
-    missing = []
-    for day in days:                       # a handful of days, not rows
-        part = root / f"date={day:%Y-%m-%d}"
-        done = (part / marker).exists() if marker else part.is_dir() and any(part.rglob("*.parquet"))
-        if not done:
-            missing.append(f"ecg/{part.name}/" + (marker if marker else ""))
-    return missing
-
-
 def worklist_db_url(params) -> str | None:
     """The worklist database: Param `db`, else the Airflow connection `db_conn_id`, else None
     (stage_worklist then uses sqlite at OUT/worklist.sqlite)."""
@@ -214,6 +203,8 @@ class ExportsLandedSensor(BaseSensorOperator):
         if now < ready_at:
             self.log.info("interval ends %s; waiting until %s for late exports", end, ready_at.isoformat())
             return False
+        from cardiosieve.pipeline.landing import missing_exports
+
         missing = missing_exports(params["lake"], start, end, params["landing_marker"])
         if not missing:
             self.log.info("exports landed for [%s, %s)", start, end)
@@ -229,95 +220,102 @@ class ExportsLandedSensor(BaseSensorOperator):
 # ---------------------------------------------------------------------------------------------
 # The DAG
 
-@dag(
-    dag_id=DAG_ID,
-    schedule=CronDataIntervalTimetable(SCHEDULE_CRON, timezone=SCHEDULE_TIMEZONE),
-    start_date=START_DATE,
-    catchup=CATCHUP,
-    max_active_runs=1,        # nights share OUT and the worklist database; episodes fold in order
-    params=PARAMS,
-    tags=["cardiosieve"],
-    default_args={"retries": RETRIES, "retry_delay": RETRY_DELAY, "retry_exponential_backoff": RETRY_BACKOFF,
-                  "max_retry_delay": MAX_RETRY_DELAY, "execution_timeout": TASK_TIMEOUT},
-    doc_md=__doc__,
-)
-def cardiosieve_nightly():
-    """Screen the ECGs acquired in this run's interval; publish the worklist for human review."""
+def make_dag(dag_id: str = DAG_ID, *, schedule: str = SCHEDULE_CRON, timezone: str = SCHEDULE_TIMEZONE,
+             start_date=START_DATE, catchup: bool = CATCHUP, params: dict | None = None,
+             worklist_asset: Asset = WORKLIST, tags: tuple[str, ...] = ("cardiosieve",)) -> DAG:
+    """The nightly screening DAG.
 
-    landed = ExportsLandedSensor(task_id="check_exports_landed", mode="reschedule",
-                                 poke_interval=POKE_INTERVAL, timeout=timedelta(days=3))
+    `schedule` is the cron of the interval bounds, read in `timezone`; `params` gives other
+    defaults to the Params by name (e.g. {"lake": "/data/lake-b", "out": "/data/cs-b",
+    "db_conn_id": "cs_b_worklist"}); `worklist_asset` is the asset the publish task updates
+    (give a second DAG its own, or its downstream DAGs run for both). The defaults come from the
+    CARDIOSIEVE_* environment variables (docs/airflow.md)."""
+    with DAG(
+        dag_id=dag_id,
+        schedule=CronDataIntervalTimetable(schedule, timezone=timezone),
+        start_date=start_date,
+        catchup=catchup,
+        max_active_runs=1,        # nights share OUT and the worklist database; episodes fold in order
+        params=make_params(**(params or {})),
+        tags=list(tags),
+        default_args={"retries": RETRIES, "retry_delay": RETRY_DELAY, "retry_exponential_backoff": RETRY_BACKOFF,
+                      "max_retry_delay": MAX_RETRY_DELAY, "execution_timeout": TASK_TIMEOUT},
+        description="Screen the ECGs acquired in each run's interval; publish the worklist for human review.",
+        doc_md=__doc__,
+    ) as nightly:
+        landed = ExportsLandedSensor(task_id="check_exports_landed", mode="reschedule",
+                                     poke_interval=POKE_INTERVAL, timeout=timedelta(days=3))
 
-    @task
-    def validate_contract(**context) -> dict:
-        """Read the night and its context against the lake contract; write stage files and rejects."""
-        from cardiosieve.pipeline.publish import clean_leftovers
-        from cardiosieve.pipeline.run import stage_load
+        @task
+        def validate_contract(**context) -> dict:
+            """Read the night and its context against the lake contract; write stage files and rejects."""
+            from cardiosieve.pipeline.publish import clean_leftovers
+            from cardiosieve.pipeline.run import stage_load
 
-        def load(*args, **kwargs):
-            clean_leftovers(params["out"])          # what a crashed run left behind, under the lock
-            return stage_load(*args, **kwargs)
+            def load(*args, **kwargs):
+                clean_leftovers(params["out"])          # what a crashed run left behind, under the lock
+                return stage_load(*args, **kwargs)
 
-        params = context["params"]
-        start, end = run_interval_bounds(context)
-        loaded = call_stage(load, params["lake"], params["out"], start, end, config=params["config"] or None,
-                            lock=stage_lock(params))
-        return {**loaded, "start": start, "end": end}
+            params = context["params"]
+            start, end = run_interval_bounds(context)
+            loaded = call_stage(load, params["lake"], params["out"], start, end, config=params["config"] or None,
+                                lock=stage_lock(params))
+            return {**loaded, "start": start, "end": end}
 
-    @task
-    def quality_gate(loaded: dict, params=None) -> dict:
-        """Great Expectations gate; writes OUT/quality.json and .html even when it stops the run."""
-        from cardiosieve.pipeline.run import stage_quality
+        @task
+        def quality_gate(loaded: dict, params=None) -> dict:
+            """Great Expectations gate; writes OUT/quality.json and .html even when it stops the run."""
+            from cardiosieve.pipeline.run import stage_quality
 
-        return call_stage(stage_quality, params["lake"], params["out"], loaded["start"], loaded["end"],
-                          config=params["config"] or None, lock=stage_lock(params))
+            return call_stage(stage_quality, params["lake"], params["out"], loaded["start"], loaded["end"],
+                              config=params["config"] or None, lock=stage_lock(params))
 
-    @task
-    def align(loaded: dict, quality: dict, params=None) -> dict:
-        from cardiosieve.pipeline.run import stage_align
+        @task
+        def align(loaded: dict, quality: dict, params=None) -> dict:
+            from cardiosieve.pipeline.run import stage_align
 
-        return call_stage(stage_align, params["out"], loaded["start"], loaded["end"],
-                          config=params["config"] or None, lake=params["lake"], lock=stage_lock(params))
+            return call_stage(stage_align, params["out"], loaded["start"], loaded["end"],
+                              config=params["config"] or None, lake=params["lake"], lock=stage_lock(params))
 
-    @task
-    def screen(loaded: dict, aligned: dict, params=None) -> dict:
-        from cardiosieve.pipeline.run import stage_screen
+        @task
+        def screen(loaded: dict, aligned: dict, params=None) -> dict:
+            from cardiosieve.pipeline.run import stage_screen
 
-        return call_stage(stage_screen, params["out"], loaded["start"], loaded["end"], config=params["config"] or None,
-                          lock=stage_lock(params))
+            return call_stage(stage_screen, params["out"], loaded["start"], loaded["end"], config=params["config"] or None,
+                              lock=stage_lock(params))
 
-    @task(outlets=[WORKLIST])
-    def publish_worklist(loaded: dict, screened: dict, params=None, outlet_events=None) -> dict:
-        """Build the worklist items, upsert them in one transaction, write OUT/worklist.parquet."""
-        from cardiosieve.pipeline.run import stage_worklist
+        @task(outlets=[worklist_asset])
+        def publish_worklist(loaded: dict, screened: dict, params=None, outlet_events=None) -> dict:
+            """Build the worklist items, upsert them in one transaction, write OUT/worklist.parquet."""
+            from cardiosieve.pipeline.run import stage_worklist
 
-        published = call_stage(stage_worklist, params["out"], loaded["start"], loaded["end"],
-                               config=params["config"] or None, db=worklist_db_url(params), lock=stage_lock(params))
-        outlet_events[WORKLIST].extra = {"interval": [loaded["start"], loaded["end"]],
-                                         "items_tonight": published["items_tonight"]}
-        return published
+            published = call_stage(stage_worklist, params["out"], loaded["start"], loaded["end"],
+                                   config=params["config"] or None, db=worklist_db_url(params), lock=stage_lock(params))
+            outlet_events[worklist_asset].extra = {"interval": [loaded["start"], loaded["end"]],
+                                                   "items_tonight": published["items_tonight"]}
+            return published
 
-    @task
-    def write_run_summary(loaded: dict, quality: dict, aligned: dict, screened: dict, published: dict,
-                          params=None) -> dict:
-        """OUT/rejects.parquet (every reject of the interval), OUT/aligned.parquet and
-        OUT/run_summary.json, as the CLI writes them; returns the outputs' paths."""
-        from cardiosieve.pipeline.run import stage_finish
+        @task
+        def write_run_summary(loaded: dict, quality: dict, aligned: dict, screened: dict, published: dict,
+                              params=None) -> dict:
+            """OUT/rejects.parquet (every reject of the interval), OUT/aligned.parquet and
+            OUT/run_summary.json, as the CLI writes them; returns the outputs' paths."""
+            from cardiosieve.pipeline.run import stage_finish
 
-        tables = loaded["tables"]
-        tables["ecg"]["screened"] = aligned["aligned"]
-        summary = {"tables": tables, "quality": quality, "aligned": aligned,
-                   "findings": screened["by_screen_tier"], "worklist": published}
-        done = call_stage(stage_finish, params["out"], loaded["start"], loaded["end"], summary,
-                          config=params["config"] or None, lock=stage_lock(params))
-        return done["outputs"]
+            tables = loaded["tables"]
+            tables["ecg"]["screened"] = aligned["aligned"]
+            summary = {"tables": tables, "quality": quality, "aligned": aligned,
+                       "findings": screened["by_screen_tier"], "worklist": published}
+            done = call_stage(stage_finish, params["out"], loaded["start"], loaded["end"], summary,
+                              config=params["config"] or None, lock=stage_lock(params))
+            return done["outputs"]
 
-    loaded = validate_contract()
-    quality = quality_gate(loaded)
-    aligned = align(loaded, quality)
-    screened = screen(loaded, aligned)
-    published = publish_worklist(loaded, screened)
-    landed >> loaded
-    write_run_summary(loaded, quality, aligned, screened, published)
+        loaded = validate_contract()
+        quality = quality_gate(loaded)
+        aligned = align(loaded, quality)
+        screened = screen(loaded, aligned)
+        published = publish_worklist(loaded, screened)
+        landed >> loaded
+        write_run_summary(loaded, quality, aligned, screened, published)
 
-
-cardiosieve_nightly()
+    return nightly
