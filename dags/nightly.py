@@ -158,9 +158,53 @@ def run_interval_bounds(context) -> tuple[str, str]:
     return lo.isoformat(), hi.isoformat()
 
 
+# libpq connection keywords taken from a postgres connection's extras and passed on as URL query
+# parameters (psycopg hands them to libpq). Host, port, user, password and database come from the
+# connection's own fields. Left out on purpose: sslpassword (a secret: it would sit in the URL's
+# query, which SQLAlchemy does not mask like the password) and replication. Every other extra is
+# ignored, in particular the Airflow postgres provider's own (cursor, iam, aws_conn_id,
+# redshift, sqlalchemy_scheme, ...), which mean nothing to libpq.
+LIBPQ_EXTRAS = (
+    "sslmode", "sslrootcert", "sslcert", "sslkey", "sslcrl", "sslcrldir", "sslsni", "sslnegotiation",
+    "sslcertmode", "ssl_min_protocol_version", "ssl_max_protocol_version", "requirepeer", "channel_binding",
+    "require_auth", "gssencmode", "krbsrvname", "gsslib", "gssdelegation", "passfile", "service",
+    "target_session_attrs", "load_balance_hosts", "connect_timeout", "application_name",
+    "fallback_application_name", "options", "client_encoding", "keepalives", "keepalives_idle",
+    "keepalives_interval", "keepalives_count", "tcp_user_timeout",
+)
+
+
+def connection_url(conn) -> str:
+    """The SQLAlchemy URL of an Airflow connection of type postgres or sqlite (ConfigError as
+    AirflowFailException otherwise). A postgres connection becomes postgresql+psycopg://, with
+    login, password, host, port, *schema* as the database and the LIBPQ_EXTRAS among its extras
+    as query parameters: postgres://u:p@h:5432/db?sslmode=verify-full&sslrootcert=/etc/ca.pem
+    keeps its TLS options. The result holds the password: pass it on, never log it."""
+    from airflow.sdk.exceptions import AirflowFailException
+    from sqlalchemy.engine import URL
+
+    kind = (conn.conn_type or "").lower()
+    if kind == "sqlite":                   # Airflow's sqlite connections keep the file path in host
+        return f"sqlite:///{conn.host}"
+    if kind not in ("postgres", "postgresql"):
+        raise AirflowFailException(f"ConfigError: connection {conn.conn_id!r} has type {kind!r}; "
+                                   "cardiosieve takes postgres or sqlite")
+    extras = conn.extra_dejson or {}
+    query = {k: _libpq_value(extras[k]) for k in LIBPQ_EXTRAS if extras.get(k) not in (None, "")}
+    return URL.create("postgresql+psycopg", username=conn.login or None, password=conn.password or None,
+                      host=conn.host or None, port=conn.port or None, database=conn.schema or None,
+                      query=query).render_as_string(hide_password=False)
+
+
+def _libpq_value(value) -> str:
+    if isinstance(value, bool):            # JSON extras: {"keepalives": true}; libpq wants 1 / 0
+        return "1" if value else "0"
+    return str(value)
+
+
 def worklist_db_url(params) -> str | None:
-    """The worklist database: Param `db`, else the Airflow connection `db_conn_id`, else None
-    (stage_worklist then uses sqlite at OUT/worklist.sqlite)."""
+    """The worklist database: Param `db`, else the Airflow connection `db_conn_id` (see
+    connection_url), else None (stage_worklist then uses sqlite at OUT/worklist.sqlite)."""
     if params.get("db"):
         return params["db"]
     conn_id = params.get("db_conn_id")
@@ -168,21 +212,12 @@ def worklist_db_url(params) -> str | None:
         return None
     from airflow.sdk import BaseHook
     from airflow.sdk.exceptions import AirflowFailException, AirflowNotFoundException
-    from sqlalchemy.engine import URL
 
     try:
         conn = BaseHook.get_connection(conn_id)
     except AirflowNotFoundException:       # a typo in the Param: no retry will define it
         raise AirflowFailException(f"ConfigError: Airflow connection {conn_id!r} is not defined") from None
-    kind = (conn.conn_type or "").lower()
-    if kind == "sqlite":                   # Airflow's sqlite connections keep the file path in host
-        return f"sqlite:///{conn.host}"
-    if kind in ("postgres", "postgresql"):
-        return URL.create("postgresql+psycopg", username=conn.login or None, password=conn.password or None,
-                          host=conn.host or None, port=conn.port or None,
-                          database=conn.schema or None).render_as_string(hide_password=False)
-    raise AirflowFailException(f"ConfigError: connection {conn_id!r} has type {kind!r}; "
-                               "cardiosieve takes postgres or sqlite")
+    return connection_url(conn)
 
 
 class ExportsLandedSensor(BaseSensorOperator):
