@@ -23,11 +23,13 @@ inside the tasks. See docs/airflow.md for deployment, Params and backfills.
 """
 from __future__ import annotations
 
+import logging
 import os
-from datetime import timedelta
+from datetime import datetime, timedelta, timezone as dt_timezone
 
 import pendulum
-from airflow.sdk import DAG, Asset, BaseSensorOperator, CronDataIntervalTimetable, Param, task
+from airflow.sdk import (DAG, Asset, AsyncCallback, BaseSensorOperator, CronDataIntervalTimetable, DeadlineAlert,
+                         DeadlineReference, Param, task)
 
 DAG_ID = "cardiosieve_nightly"
 # Deployment settings read from the environment when this module is imported (no I/O); they are
@@ -36,6 +38,22 @@ SCHEDULE_CRON = os.environ.get("CARDIOSIEVE_CRON", "0 0 * * *")          # inter
 SCHEDULE_TIMEZONE = os.environ.get("CARDIOSIEVE_TIMEZONE", "UTC")
 START_DATE = pendulum.parse(os.environ.get("CARDIOSIEVE_START_DATE", "2026-01-01T00:00:00Z"))
 CATCHUP = os.environ.get("CARDIOSIEVE_CATCHUP", "false").strip().lower() in ("1", "true", "yes")
+
+
+def _minutes(name: str) -> timedelta | None:
+    """A positive whole number of minutes from the environment; None when unset or empty. A bad
+    value is a ValueError at parse time: an import error the UI shows, not a silent default."""
+    raw = os.environ.get(name, "").strip()
+    if not raw:
+        return None
+    if not raw.isdigit() or int(raw) == 0:
+        raise ValueError(f"{name}={raw!r}: expected a positive whole number of minutes")
+    return timedelta(minutes=int(raw))
+
+
+# How long after the end of its data interval a run must have finished before the missed-deadline
+# callback fires; None (unset): no deadline.
+DEADLINE_AFTER_END = _minutes("CARDIOSIEVE_DEADLINE_MIN")
 
 # The published worklist, for DAGs that should run after it changes (schedule=[WORKLIST]).
 WORKLIST = Asset(name="cardiosieve_worklist")
@@ -253,18 +271,87 @@ class ExportsLandedSensor(BaseSensorOperator):
 
 
 # ---------------------------------------------------------------------------------------------
+# Alerts: one log line each, names only. A callback never sees a row, but an exception's message
+# may quote one (a database error can quote the row it choked on), so only its type is logged;
+# the task's own log holds the message.
+
+ALERT_LOG = logging.getLogger("cardiosieve.alerts")
+
+
+def log_task_failure(context) -> None:
+    """Default on_failure_callback of every task (called once a task has failed for good, after
+    its retries): one ERROR line on logger cardiosieve.alerts in the task's log, with the DAG,
+    run and task ids and the exception's type."""
+    try:
+        ti = context.get("ti") or context.get("task_instance")
+        exc = context.get("exception")
+        ALERT_LOG.error("cardiosieve task failed: dag_id=%s run_id=%s task_id=%s exception=%s",
+                        getattr(ti, "dag_id", None), getattr(ti, "run_id", None) or context.get("run_id"),
+                        getattr(ti, "task_id", None), type(exc).__name__ if exc is not None else None)
+    except Exception:                          # an alert must never mask the failure it reports
+        ALERT_LOG.error("cardiosieve task failed (the failure context could not be read)")
+
+
+async def log_missed_deadline(context=None, **kwargs) -> None:
+    """Default missed-deadline callback (runs in the triggerer, so it is async): one ERROR line
+    on logger cardiosieve.alerts in the triggerer's log, with the DAG and run ids and the
+    deadline. A backfill of past nights is late by design: INFO instead."""
+    run = (context or {}).get("dag_run") or {}
+    deadline = (context or {}).get("deadline") or {}
+    backfill = str(run.get("run_type", "")).lower() == "backfill"
+    ALERT_LOG.log(logging.INFO if backfill else logging.ERROR,
+                  "cardiosieve run missed its deadline: dag_id=%s run_id=%s deadline=%s%s",
+                  run.get("dag_id"), run.get("run_id"), deadline.get("deadline_time"),
+                  " (backfill of a past night)" if backfill else "")
+
+
+def interval_length(schedule: str, timezone: str, start_date) -> timedelta:
+    """The length of the data intervals of cron `schedule` in `timezone`: the gap between the first
+    two cron times after start_date (a day for the default; a DST night in a local time zone is an
+    hour longer or shorter, which the deadline then ignores)."""
+    from croniter import croniter               # Airflow's cron timetables use it too
+
+    first = pendulum.instance(start_date).in_timezone(pendulum.timezone(timezone))
+    times = croniter(schedule, first)
+    a, b = times.get_next(datetime), times.get_next(datetime)
+    return b.astimezone(dt_timezone.utc) - a.astimezone(dt_timezone.utc)
+
+
+def nightly_deadline(after_end: timedelta, *, schedule: str = SCHEDULE_CRON, timezone: str = SCHEDULE_TIMEZONE,
+                     start_date=START_DATE, callback=None) -> DeadlineAlert:
+    """A DeadlineAlert `after_end` after the end of each run's data interval. Airflow 3.3 counts a
+    deadline from a reference such as the run's logical date, which for this timetable is the
+    interval's start, so the interval's length is added. `callback`: an AsyncCallback or
+    SyncCallback; default log_missed_deadline."""
+    return DeadlineAlert(reference=DeadlineReference.DAGRUN_LOGICAL_DATE,
+                         interval=interval_length(schedule, timezone, start_date) + after_end,
+                         callback=callback or AsyncCallback(log_missed_deadline), name="cardiosieve_nightly_late")
+
+
+# ---------------------------------------------------------------------------------------------
 # The DAG
 
 def make_dag(dag_id: str = DAG_ID, *, schedule: str = SCHEDULE_CRON, timezone: str = SCHEDULE_TIMEZONE,
              start_date=START_DATE, catchup: bool = CATCHUP, params: dict | None = None,
-             worklist_asset: Asset = WORKLIST, tags: tuple[str, ...] = ("cardiosieve",)) -> DAG:
+             worklist_asset: Asset = WORKLIST, on_failure_callback=log_task_failure,
+             deadline: timedelta | DeadlineAlert | None = DEADLINE_AFTER_END, on_deadline_missed=None,
+             tags: tuple[str, ...] = ("cardiosieve",)) -> DAG:
     """The nightly screening DAG.
 
     `schedule` is the cron of the interval bounds, read in `timezone`; `params` gives other
     defaults to the Params by name (e.g. {"lake": "/data/lake-b", "out": "/data/cs-b",
     "db_conn_id": "cs_b_worklist"}); `worklist_asset` is the asset the publish task updates
-    (give a second DAG its own, or its downstream DAGs run for both). The defaults come from the
-    CARDIOSIEVE_* environment variables (docs/airflow.md)."""
+    (give a second DAG its own, or its downstream DAGs run for both).
+
+    Alerts: `on_failure_callback` is every task's (default log_task_failure; None for none; a
+    notifier works too). `deadline`: how long after the end of its data interval a run must have
+    finished (a timedelta, see nightly_deadline; or a DeadlineAlert as it is; None for none),
+    `on_deadline_missed` its callback (default log_missed_deadline).
+
+    The defaults come from the CARDIOSIEVE_* environment variables (docs/airflow.md)."""
+    if isinstance(deadline, timedelta):
+        deadline = nightly_deadline(deadline, schedule=schedule, timezone=timezone, start_date=start_date,
+                                    callback=on_deadline_missed)
     with DAG(
         dag_id=dag_id,
         schedule=CronDataIntervalTimetable(schedule, timezone=timezone),
@@ -274,7 +361,9 @@ def make_dag(dag_id: str = DAG_ID, *, schedule: str = SCHEDULE_CRON, timezone: s
         params=make_params(**(params or {})),
         tags=list(tags),
         default_args={"retries": RETRIES, "retry_delay": RETRY_DELAY, "retry_exponential_backoff": RETRY_BACKOFF,
-                      "max_retry_delay": MAX_RETRY_DELAY, "execution_timeout": TASK_TIMEOUT},
+                      "max_retry_delay": MAX_RETRY_DELAY, "execution_timeout": TASK_TIMEOUT,
+                      "on_failure_callback": on_failure_callback},
+        deadline=deadline,
         description="Screen the ECGs acquired in each run's interval; publish the worklist for human review.",
         doc_md=__doc__,
     ) as nightly:

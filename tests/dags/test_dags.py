@@ -10,6 +10,7 @@ import shutil
 import sqlite3
 import subprocess
 import sys
+from datetime import timedelta
 
 import pandas as pd
 import pendulum
@@ -131,11 +132,99 @@ def test_make_dag_rejects_an_unknown_param_default():
         m.make_dag("cardiosieve_typo", params={"lakes": "/data/lake"})
 
 
+def test_every_task_reports_its_failure_and_no_deadline_is_set_unless_asked(dagbag):
+    m = load_dag_module()
+    dag = dagbag.dags["cardiosieve_nightly"]
+    for t in dag.tasks:
+        assert t.on_failure_callback == [m.log_task_failure], t.task_id
+    assert not dag.deadline                      # CARDIOSIEVE_DEADLINE_MIN is not set here
+    quiet = m.make_dag("cardiosieve_quiet", on_failure_callback=None)
+    assert all(not t.on_failure_callback for t in quiet.tasks)
+
+
+def test_a_deadline_counts_from_the_end_of_the_data_interval():
+    from airflow.sdk import AsyncCallback, DeadlineAlert, DeadlineReference
+
+    m = load_dag_module()
+    dag = m.make_dag("cardiosieve_late", deadline=timedelta(minutes=90))
+    [alert] = dag.deadline
+    # Airflow counts from the logical date, the interval's start: a day plus 90 minutes.
+    assert alert.reference == DeadlineReference.DAGRUN_LOGICAL_DATE
+    assert alert.interval == timedelta(days=1, minutes=90)
+    assert alert.callback == AsyncCallback(m.log_missed_deadline)
+    assert alert.callback.path == "cardiosieve.dags.nightly.log_missed_deadline"
+    six_hourly = m.make_dag("cardiosieve_6h", schedule="0 */6 * * *", deadline=timedelta(minutes=90))
+    assert six_hourly.deadline[0].interval == timedelta(hours=6, minutes=90)
+    own = DeadlineAlert(reference=DeadlineReference.DAGRUN_QUEUED_AT, interval=timedelta(hours=3),
+                        callback=AsyncCallback(m.log_missed_deadline))
+    assert m.make_dag("cardiosieve_own", deadline=own).deadline == [own]
+
+
+def test_the_deadline_comes_from_the_environment_and_a_bad_value_is_an_import_error():
+    probe = "import runpy, sys; d = runpy.run_path(sys.argv[1])['dag'].deadline; print(d and d[0].interval)"
+
+    def parse(value):
+        env = {**os.environ, "CARDIOSIEVE_DEADLINE_MIN": value}
+        return subprocess.run([sys.executable, "-c", probe, str(DAG_FILE)], capture_output=True, text=True, env=env)
+
+    assert parse("480").stdout.strip().splitlines()[-1] == "1 day, 8:00:00"
+    assert parse("").stdout.strip().splitlines()[-1] == "None"
+    bad = parse("8h")
+    assert bad.returncode != 0 and "CARDIOSIEVE_DEADLINE_MIN='8h': expected a positive whole number" in bad.stderr
+
+
+def test_the_failure_alert_is_one_line_of_ids_and_the_exception_type_only(caplog):
+    from types import SimpleNamespace
+
+    from cardiosieve.pipeline.normalise import ContractError
+
+    m = load_dag_module()
+    ids = patient_ids()
+    ti = SimpleNamespace(dag_id="cardiosieve_nightly", run_id="scheduled__2026-11-29T00:00:00+00:00",
+                         task_id="validate_contract")
+    # Even an exception whose message quotes a row (a driver error can) leaves only its type.
+    exc = ContractError(f"table ecg: patient {ids[0]} has qt_ms 712.345")
+    with caplog.at_level("INFO", logger="cardiosieve.alerts"):
+        m.log_task_failure({"ti": ti, "exception": exc, "params": {"lake": "/data/lake"}})
+        m.log_task_failure({})                           # a thin context: still one line, no error
+    lines = [r.getMessage() for r in caplog.records if r.name == "cardiosieve.alerts"]
+    assert lines[0] == ("cardiosieve task failed: dag_id=cardiosieve_nightly "
+                        "run_id=scheduled__2026-11-29T00:00:00+00:00 task_id=validate_contract exception=ContractError")
+    assert lines[1].startswith("cardiosieve task failed: dag_id=None") and len(lines) == 2
+    assert leaked(caplog.text, ids) == [] and "712.345" not in caplog.text
+
+
+def test_the_missed_deadline_alert_names_the_run_and_a_backfill_is_only_info(caplog):
+    import asyncio
+
+    m = load_dag_module()
+
+    def context(run_type):
+        return {"dag_run": {"dag_id": "cardiosieve_nightly", "run_id": f"{run_type}__2026-11-29T00:00:00+00:00",
+                            "run_type": run_type, "conf": {"lake": "/data/lake"}},
+                "deadline": {"id": "d-1", "deadline_time": "2026-11-30T08:00:00+00:00"}}
+
+    with caplog.at_level("INFO", logger="cardiosieve.alerts"):
+        asyncio.run(m.log_missed_deadline(context=context("scheduled")))
+        asyncio.run(m.log_missed_deadline(context=context("backfill")))
+    got = [(r.levelname, r.getMessage()) for r in caplog.records if r.name == "cardiosieve.alerts"]
+    assert got == [
+        ("ERROR", "cardiosieve run missed its deadline: dag_id=cardiosieve_nightly "
+                  "run_id=scheduled__2026-11-29T00:00:00+00:00 deadline=2026-11-30T08:00:00+00:00"),
+        ("INFO", "cardiosieve run missed its deadline: dag_id=cardiosieve_nightly "
+                 "run_id=backfill__2026-11-29T00:00:00+00:00 deadline=2026-11-30T08:00:00+00:00 "
+                 "(backfill of a past night)")]
+
+
 # A deployment's DAG file, in a DAGs folder of its own: a second site's nightly DAG.
+# The second DAG takes its deadline from CARDIOSIEVE_DEADLINE_MIN; the first has none, because
+# dag.test() (`airflow dags test`) of Airflow 3.3.2 fails at the end of a run of a DAG with a
+# deadline (it hands the encoded alerts, not their ids, to DeadlineAlert.get_by_id).
 SITE_B_DAG_FILE = '''"""Airflow DAG file of a second site, made by the installed cardiosieve package."""
 from cardiosieve.dags.nightly import make_dag
 
-dag = make_dag("cardiosieve_site_b", params={params!r}, schedule="0 6 * * *")
+dag = make_dag("cardiosieve_site_b", params={params!r}, schedule="0 6 * * *", deadline=None)
+late = make_dag("cardiosieve_site_b_late", params={params!r}, schedule="0 6 * * *")
 '''
 # Run in a fresh interpreter whose DAGs folder is that folder (dag.test() runs only DAGs of the
 # configured DAGs folder), against the session's metadata database.
@@ -145,9 +234,20 @@ from airflow.dag_processing.dagbag import DagBag
 import cardiosieve.dags.nightly as factory
 bag = DagBag(dag_folder=sys.argv[1])
 dr = bag.dags["cardiosieve_site_b"].test(logical_date=pendulum.datetime(2026, 11, 29, 9, tz="UTC"))
-print(json.dumps({"dags": bag.dag_ids, "errors": list(bag.import_errors), "state": str(dr.state),
+# dag.test() wrote the folder's DAGs to the metadata database, where the scheduler reads the
+# deadline alerts from.
+from sqlalchemy import select
+from airflow.models.deadline_alert import DeadlineAlert
+from airflow.models.serialized_dag import SerializedDagModel
+from airflow.utils.session import create_session
+with create_session() as session:
+    alerts = {dag_id: [(a.interval["__data__"], a.reference["reference_type"], a.callback_def["__data__"]["path"])
+                       for a in session.scalars(select(DeadlineAlert).join(SerializedDagModel,
+                           DeadlineAlert.serialized_dag_id == SerializedDagModel.id).where(SerializedDagModel.dag_id == dag_id))]
+              for dag_id in bag.dag_ids}
+print(json.dumps({"dags": sorted(bag.dag_ids), "errors": list(bag.import_errors), "state": str(dr.state),
                   "interval": [dr.data_interval_start.isoformat(), dr.data_interval_end.isoformat()],
-                  "factory": factory.__file__}))
+                  "factory": factory.__file__, "alerts": alerts}))
 """
 
 
@@ -160,23 +260,29 @@ def test_make_dag_with_its_own_id_and_params_runs_from_another_dags_folder(airfl
 
     from airflow.dag_processing.dagbag import DagBag
     bag = DagBag(dag_folder=str(folder))
-    assert bag.import_errors == {} and bag.dag_ids == ["cardiosieve_site_b"]
+    assert bag.import_errors == {} and sorted(bag.dag_ids) == ["cardiosieve_site_b", "cardiosieve_site_b_late"]
     dag = bag.dags["cardiosieve_site_b"]
     assert {k: dag.params[k] for k in defaults} == defaults
     assert dag.params["landing_timeout_min"] == 360 and sorted(dag.task_ids) == sorted(TASKS)
 
-    env = {**os.environ, "AIRFLOW__CORE__DAGS_FOLDER": str(folder)}
+    env = {**os.environ, "AIRFLOW__CORE__DAGS_FOLDER": str(folder), "CARDIOSIEVE_DEADLINE_MIN": "600"}
     env.pop("PYTHONPATH", None)
     got = subprocess.run([sys.executable, "-c", SITE_B_RUN, str(folder)], cwd=tmp_path, env=env,
                          capture_output=True, text=True, timeout=600)
     assert got.returncode == 0, got.stderr[-2000:]
     result = json.loads(got.stdout.strip().splitlines()[-1])
-    assert result["dags"] == ["cardiosieve_site_b"] and result["errors"] == []
+    assert result["dags"] == ["cardiosieve_site_b", "cardiosieve_site_b_late"] and result["errors"] == []
     assert result["state"] == "success"
     # The site's own cron: 06:00 to 06:00 UTC; the manual run at 09:00 on the 29th gets the last
     # complete interval, which touches the sample lake's 28th and 29th.
     assert result["interval"] == ["2026-11-28T06:00:00+00:00", "2026-11-29T06:00:00+00:00"]
     assert result["factory"].endswith("nightly.py")                  # the installed package's module
+    # The deadline from CARDIOSIEVE_DEADLINE_MIN, as the scheduler will read it: logical date
+    # (a scheduled run's interval start) + a day + 600 minutes, reported by the package's callback.
+    assert result["alerts"] == {
+        "cardiosieve_site_b": [],
+        "cardiosieve_site_b_late": [[(24 * 60 + 600) * 60.0, "DagRunLogicalDateDeadline",
+                                     "cardiosieve.dags.nightly.log_missed_deadline"]]}
     assert (out / "worklist.parquet").exists()
     assert json.loads((out / "run_summary.json").read_text())["interval"] == result["interval"]
 
@@ -245,6 +351,19 @@ def test_rerun_with_explicit_interval_and_a_connection_reproduces_the_cli_workli
         assert summary[key] == json.loads(json.dumps(reference[key], default=str)), key
 
 
+def test_a_manual_run_with_a_midnight_logical_date_screens_the_day_before_it(nightly, tmp_path):
+    # `airflow dags test cardiosieve_nightly 2026-11-29` is dag.test(logical_date=2026-11-29T00:00Z).
+    # Airflow gives a manual run the last complete interval ending at or before its logical date,
+    # so this run screens the 28th, while the scheduler's run of the 28th has logical date the 28th.
+    out = tmp_path / "out"
+    dr = nightly.test(logical_date=pendulum.datetime(2026, 11, 29, tz="UTC"), run_conf=conf(SAMPLE_LAKE, out))
+    assert dr.state == "success", states(dr)
+    assert dr.logical_date == pendulum.datetime(2026, 11, 29, tz="UTC")
+    assert (dr.data_interval_start, dr.data_interval_end) == (pendulum.datetime(2026, 11, 28, tz="UTC"), NIGHT_START)
+    assert json.loads((out / "run_summary.json").read_text())["interval"] == \
+        ["2026-11-28T00:00:00+00:00", "2026-11-29T00:00:00+00:00"]
+
+
 def test_missing_required_column_fails_validation_once_and_publishes_nothing(nightly, tmp_path, capfd, caplog):
     def drop_qt(f):
         if f.name == "part-1.parquet":
@@ -264,6 +383,10 @@ def test_missing_required_column_fails_validation_once_and_publishes_nothing(nig
     # The message names the table, the file and the column.
     line = next(x for x in text.splitlines() if "lacks required column" in x)
     assert "ContractError: table ecg" in line and "date=2026-11-29/part-1.parquet" in line and "qt_ms" in line
+    # ... and the failure alert is the one line of ids and the exception's type.
+    alert = [x for x in text.splitlines() if "cardiosieve task failed:" in x]
+    assert len(alert) == 1 and "task_id=validate_contract exception=AirflowFailException" in alert[0]
+    assert f"run_id={dr.run_id}" in alert[0] and "dag_id=cardiosieve_nightly" in alert[0]
 
 
 def test_failed_quality_gate_writes_the_report_and_publishes_nothing(nightly, tmp_path, capfd, caplog):
