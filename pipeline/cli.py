@@ -52,6 +52,10 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--start", required=True, help="first instant screened, ISO 8601 (e.g. 2026-11-29)")
     run.add_argument("--end", required=True, help="end of the interval, excluded, ISO 8601 (e.g. 2026-11-30)")
     run.add_argument("--db", help="SQLAlchemy URL of the worklist database (default: sqlite at OUT/worklist.sqlite)")
+    run.add_argument("--landing-marker", metavar="NAME", default="",
+                     help="file the exporter writes into each ecg/date=... partition once it is complete (e.g. "
+                          "_SUCCESS); default: a partition holding a Parquet file has landed. The run stops "
+                          "(exit 2) before it starts when a day of [start, end) has not landed")
     run.set_defaults(handler=_cmd_run)
 
     val = sub.add_parser("validate", help="check the lake against the contract and report rejects",
@@ -168,6 +172,8 @@ def main(argv: list[str] | None = None) -> int:
 
 
 def _cmd_run(args) -> int:
+    from cardiosieve.pipeline.landing import check_landed
+    check_landed(args.lake, args.start, args.end, args.landing_marker)   # folder names only; exit 2 when missing
     from cardiosieve.pipeline.gateworker import GateWorker
     with GateWorker(args.config) as gate:      # first: Great Expectations imports while this process goes on
         from cardiosieve.pipeline.run import run_interval

@@ -51,6 +51,45 @@ def test_bad_input_exits_2_with_a_one_line_reason(tmp_path, capsys, argv, messag
     assert message in err and len(err.splitlines()) == 1
 
 
+def test_a_night_whose_ecg_partition_has_not_landed_exits_2_naming_it_before_anything_starts(
+        tmp_path, capsys, monkeypatch):
+    import cardiosieve.pipeline.gateworker
+
+    # The lake holds the 28th; tonight's export (the 29th) never came.
+    lake = write_lake(tmp_path / "lake", ecg=[ecg_row("ECG-SECRET-1", "PAT-SECRET-1", acquired_at="2026-11-28T10:00:00Z")],
+                      labs=[lab_row("R1", "PAT-SECRET-1")], patients=[patient_row("PAT-SECRET-1")])
+
+    def no_gate(*a, **k):
+        raise AssertionError("the gate worker started")
+    monkeypatch.setattr(cardiosieve.pipeline.gateworker, "GateWorker", no_gate)
+    assert main(["run", "--lake", str(lake), "--out", str(tmp_path / "out"), *ARGS]) == 2
+    err = capsys.readouterr().err
+    assert err == (f"cardiosieve: error: the ECG export for [2026-11-29, 2026-11-30) has not landed in lake {lake}: "
+                   "missing ecg/date=2026-11-29/\n")
+    assert not (tmp_path / "out").exists()              # nothing published, nothing written
+
+
+def test_a_landing_marker_is_needed_in_every_partition_when_named(tmp_path, capsys):
+    lake = write_lake(tmp_path / "lake")
+    out = str(tmp_path / "out")
+    assert main(["run", "--lake", str(lake), "--out", out, "--landing-marker", "_SUCCESS", *ARGS]) == 2
+    assert "missing ecg/date=2026-11-29/_SUCCESS" in capsys.readouterr().err
+    (lake / "ecg" / "date=2026-11-29" / "_SUCCESS").write_bytes(b"")
+    assert main(["run", "--lake", str(lake), "--out", out, "--landing-marker", "_SUCCESS", *ARGS]) == 0
+
+
+def test_an_unpartitioned_ecg_folder_holding_a_file_counts_as_landed(tmp_path, capsys):
+    from tests.lake_builders import lead_rows, write_table
+
+    lake = tmp_path / "lake"
+    write_table(lake, "ecg", [ecg_row()])                # flat: no date= partitions
+    write_table(lake, "ecg_lead", lead_rows())
+    write_table(lake, "lab", [lab_row()], "collected_at")
+    write_table(lake, "patient", [patient_row()])
+    assert main(["run", "--lake", str(lake), "--out", str(tmp_path / "out"), *ARGS]) == 0
+    assert "screened: 1" in capsys.readouterr().out
+
+
 def test_corrupt_file_exits_2_naming_the_file(tmp_path, capsys):
     lake = write_lake(tmp_path / "lake")
     (lake / "lab" / "date=2026-11-29" / "part-bad.parquet").write_bytes(b"PAR1 broken")
@@ -73,6 +112,15 @@ def _bad_input_errors():
             StoreLockedError("the database is locked by another process (waited 60 s)")]
 
 
+def _landed(tmp_path):
+    """A lake whose night has landed as far as the landing check can tell (it lists folders and
+    never opens a file): for the tests that replace run_interval and only classify its errors."""
+    part = tmp_path / "lake" / "ecg" / "date=2026-11-29"
+    part.mkdir(parents=True)
+    (part / "part-0.parquet").write_bytes(b"")
+    return str(tmp_path / "lake")
+
+
 @pytest.mark.parametrize("error", _bad_input_errors(), ids=lambda e: type(e).__name__)
 def test_every_bad_input_error_exits_2_with_its_message(tmp_path, capsys, monkeypatch, error):
     import cardiosieve.pipeline.run
@@ -80,14 +128,14 @@ def test_every_bad_input_error_exits_2_with_its_message(tmp_path, capsys, monkey
     def fail(*a, **k):
         raise error
     monkeypatch.setattr(cardiosieve.pipeline.run, "run_interval", fail)
-    assert main(["run", "--lake", "x", "--out", str(tmp_path), *ARGS]) == 2
+    assert main(["run", "--lake", _landed(tmp_path), "--out", str(tmp_path / "out"), *ARGS]) == 2
     assert capsys.readouterr().err == f"cardiosieve: error: {error}\n"
 
 
 def test_internal_error_exits_1_without_a_traceback(tmp_path, capsys, monkeypatch):
     import cardiosieve.pipeline.run
     monkeypatch.setattr(cardiosieve.pipeline.run, "run_interval", lambda *a, **k: 1 / 0)
-    assert main(["run", "--lake", "x", "--out", str(tmp_path), *ARGS]) == 1
+    assert main(["run", "--lake", _landed(tmp_path), "--out", str(tmp_path / "out"), *ARGS]) == 1
     err = capsys.readouterr().err
     assert "internal error (ZeroDivisionError)" in err and "Traceback" not in err
 
@@ -100,7 +148,7 @@ def test_system_io_error_exits_1_and_says_to_rerun(tmp_path, capsys, monkeypatch
     def away(*a, **k):
         raise OSError(errno.EIO, "Input/output error", "/mnt/lake/ecg")
     monkeypatch.setattr(cardiosieve.pipeline.run, "run_interval", away)
-    assert main(["run", "--lake", "x", "--out", str(tmp_path), *ARGS]) == 1
+    assert main(["run", "--lake", _landed(tmp_path), "--out", str(tmp_path / "out"), *ARGS]) == 1
     err = capsys.readouterr().err
     assert "I/O error: Input/output error (/mnt/lake/ecg)" in err and "rerun" in err and len(err.splitlines()) == 1
 

@@ -2,8 +2,10 @@
 another project that owns a top-level `pipeline` (or `screens`) cannot break it: the wheel is
 installed into a clean venv beside such a package and `cardiosieve run` screens the sample lake;
 the store's migrations ship in it (`run` builds its store with them, `db upgrade --create` a new
-one, `db current` reads the revision).
-The venv reuses this environment's installed dependencies (a path file), not the network."""
+one, `db current` reads the revision). The wheel also carries the Airflow DAG factory
+(cardiosieve.dags.nightly), and the package cardiosieve.dags imports where Airflow is missing.
+The venv reuses this environment's installed dependencies (a path file), not the network; an
+`airflow` package that fails to import stands in for an environment without the scheduler extra."""
 from __future__ import annotations
 
 import os
@@ -39,6 +41,8 @@ def test_the_wheel_installs_under_its_namespace_beside_a_top_level_pipeline_pack
     migrations = sorted(p.relative_to(ROOT / "pipeline").as_posix() for p in (ROOT / "pipeline" / "migrations").rglob("*.py"))
     assert "migrations/env.py" in migrations and "migrations/versions/0001_baseline.py" in migrations
     assert {f"cardiosieve/pipeline/{m}" for m in migrations} <= set(names)
+    assert {"cardiosieve/dags/__init__.py", "cardiosieve/dags/nightly.py", "cardiosieve/dags/cardiosieve_nightly.py",
+            "cardiosieve/pipeline/landing.py"} <= set(names)
 
     venv = tmp_path / "venv"
     assert _run([sys.executable, "-m", "venv", venv], cwd=tmp_path).returncode == 0
@@ -50,6 +54,8 @@ def test_the_wheel_installs_under_its_namespace_beside_a_top_level_pipeline_pack
     for name in ("pipeline", "screens"):                 # another project's top-level packages
         (site / name).mkdir()
         (site / name / "__init__.py").write_text("raise ImportError('this is another project')\n")
+    (site / "airflow").mkdir()                            # no scheduler extra in this venv
+    (site / "airflow" / "__init__.py").write_text("raise ImportError('no airflow in this venv')\n")
 
     env = {k: v for k, v in os.environ.items() if k not in ("PYTHONPATH", "CARDIOSIEVE_KILL_AT")}
     done = _run([venv / "bin" / "cardiosieve", "run", "--lake", LAKE, "--config", LAKE / "site.toml",
@@ -68,6 +74,12 @@ def test_the_wheel_installs_under_its_namespace_beside_a_top_level_pipeline_pack
                 cwd=tmp_path, env=env)
     assert (made.returncode, made.stdout) == (0, f"worklist store created at schema revision {HEAD_REVISION}\n"), \
         made.stderr[-1500:]
+    # The DAG package imports without Airflow; only the factory module needs it.
+    dags = _run([py, "-c", "import cardiosieve.dags as d; print(d.__file__)"], cwd=tmp_path, env=env)
+    assert dags.returncode == 0, dags.stderr[-1500:]
+    assert dags.stdout.strip().startswith(str(site / "cardiosieve" / "dags"))
+    factory = _run([py, "-c", "import cardiosieve.dags.nightly"], cwd=tmp_path, env=env)
+    assert factory.returncode != 0 and "no airflow in this venv" in factory.stderr
 
 
 def test_no_module_imports_the_old_top_level_names():

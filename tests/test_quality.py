@@ -523,7 +523,14 @@ def test_a_small_night_without_labs_is_a_warning_not_a_stop(tmp_path):
 
 
 def test_a_night_with_no_ecg_rows_stops_the_run(tmp_path, capsys):
+    # Tonight's partition landed but holds no row (a night whose partition is missing altogether
+    # stops earlier, at the landing check: tests/test_cli.py).
+    import pandas as pd
+
+    from tests.lake_builders import ecg_row, write_partition
+
     lake = _feed_lake(tmp_path, 0, lab_day="2026-11-20")
+    write_partition(lake, "ecg", "date=2026-11-29", pd.DataFrame([ecg_row()]).iloc[0:0])
     assert _run(tmp_path, lake) == 2
     assert "ecg_feed_present" in capsys.readouterr().err
 
