@@ -600,7 +600,10 @@ def _canonical(df: pd.DataFrame) -> pd.DataFrame:
 
 
 def _rerank(conn: Connection) -> None:
-    """Rank every stored item in one statement, the same order as worklist.rank_items."""
+    """Rank every stored item in one statement, the same order as worklist.rank_items. The
+    pipeline's only rank: a review changes an item's status and so every rank below it, and a
+    night's new items move the ranks of the stored ones, so the rank is a property of the whole
+    table, computed here (build_items leaves it NA)."""
     t = worklist_item
     group = case((t.c.status.in_(ACTIVE_STATUSES), 0), (t.c.status == STATUS_EXPLAINED, 1), else_=2)
     rn = func.row_number().over(order_by=[group, t.c.tier, t.c.score.desc(), t.c.ecg_at.desc(), t.c.item_id])
