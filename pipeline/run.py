@@ -413,9 +413,20 @@ def stage_screen(out, start, end, config=None, settings: Settings | None = None)
     return {"findings": int(len(findings)), "by_screen_tier": counts}
 
 
-def stage_worklist(out, start, end, config=None, db=None, settings: Settings | None = None) -> dict:
+def chunk_run_id(lo: pd.Timestamp, hi: pd.Timestamp) -> str:
+    """The run_id stage_worklist writes on the items a run (one chunk of a backfill) changes."""
+    return f"{lo:%Y%m%dT%H%M%SZ}_{hi:%Y%m%dT%H%M%SZ}"
+
+
+def stage_worklist(out, start, end, config=None, db=None, settings: Settings | None = None,
+                   earlier_run_ids=(), write: bool = True) -> dict:
     """Fold findings into worklist items, upsert them into the database in one transaction, and
-    write the database's ranked items to the stage's worklist.parquet (published by stage_finish)."""
+    write the night's worklist to the stage's worklist.parquet (published by stage_finish): the
+    active items and the items this run inserted or changed, in rank order with the store's
+    global rank (store.read_worklist). `earlier_run_ids`: the run_ids of a backfill's earlier
+    chunks, whose changed items belong to the run's worklist too. `write=False` (a backfill's
+    earlier chunks, whose worklist.parquet stage_finish never publishes) skips the read-back and
+    the file; the summary then has no by_screen."""
     from cardiosieve.pipeline import store, worklist
 
     settings = settings or load_settings(config)
@@ -428,16 +439,18 @@ def stage_worklist(out, start, end, config=None, db=None, settings: Settings | N
     try:
         patients = sorted(set(findings["patient_id"]) | set(aligned["patient_id"]))
         existing = store.read_items(engine, patient_ids=patients)
-        run_id = f"{lo:%Y%m%dT%H%M%SZ}_{hi:%Y%m%dT%H%M%SZ}"
+        run_id = chunk_run_id(lo, hi)
         items = worklist.build_items(findings, aligned, existing, run_id=run_id, now=hi,
                                      episode_h=settings.windows["episode_h"],
                                      explainers=worklist.explainers_for(rules))
         db_counts = store.upsert_items(engine, items)
         fault_point("after_commit")
-        ranked = store.read_items(engine)
+        if not write:
+            (d / "worklist.parquet").unlink(missing_ok=True)   # none from an earlier run stays
+            return {"items_tonight": int(len(items)), "db_counts": db_counts}
+        ranked = store.read_worklist(engine, [run_id, *earlier_run_ids])
     finally:
         engine.dispose()
-    ranked = ranked.sort_values("rank", kind="stable") if "rank" in ranked.columns else ranked
     ranked.attrs["caution"] = CAUTION                      # travels in the Parquet file's metadata
     write_parquet_atomic(ranked, d / "worklist.parquet")
     active = ranked[ranked["status"].isin(worklist.ACTIVE_STATUSES)] if len(ranked) else ranked
@@ -475,8 +488,14 @@ def run_interval(lake, out, start, end, config=None, db=None, quality: bool = Tr
         clean_leftovers(out)                      # what a crashed run left behind
         progress = Progress(bounds)
         parts = []
-        for k, (a, b) in enumerate(zip(bounds[:-1], bounds[1:])):
-            parts.append(_run_chunk(lake, out, a, b, settings, db, gate, label=progress.label(k)))
+        chunks = list(zip(bounds[:-1], bounds[1:]))
+        for k, (a, b) in enumerate(chunks):
+            # Only the last chunk writes worklist.parquet (the one stage_finish publishes): the
+            # run's active items and every item its chunks changed.
+            last = k + 1 == len(chunks)
+            earlier = [chunk_run_id(x, y) for x, y in chunks[:k]] if last else []
+            parts.append(_run_chunk(lake, out, a, b, settings, db, gate, label=progress.label(k),
+                                    write_worklist=last, earlier_run_ids=earlier))
             progress.done(k, parts[-1])
         summary = stage_finish(out, lo, hi, _add_up(parts) | {"chunks": len(parts)}, settings, bounds)
         log.info("run [%s, %s) published in %.1f s", lo.isoformat(), hi.isoformat(), progress.elapsed())
@@ -621,7 +640,8 @@ def _link_or_copy(src: Path, dst: Path) -> None:
         shutil.copyfile(src, dst)
 
 
-def _run_chunk(lake, out, lo, hi, settings: Settings, db, gate, label: str = "chunk") -> dict:
+def _run_chunk(lake, out, lo, hi, settings: Settings, db, gate, label: str = "chunk",
+               write_worklist: bool = True, earlier_run_ids=()) -> dict:
     """One chunk through every stage. With a `gate` (pipeline/gateworker.py) the row checks run
     here and the verdict in the worker, awaited before the worklist stage: nothing reaches the
     store or the outputs unless the gate passed."""
@@ -651,7 +671,8 @@ def _run_chunk(lake, out, lo, hi, settings: Settings, db, gate, label: str = "ch
     if gate is not None:
         summary["quality"] = timed("quality_wait", gate.result)
         fault_point("after_quality")
-    summary["worklist"] = timed("worklist", stage_worklist, out, lo, hi, db=db, settings=settings)
+    summary["worklist"] = timed("worklist", stage_worklist, out, lo, hi, db=db, settings=settings,
+                                earlier_run_ids=earlier_run_ids, write=write_worklist)
     summary["seconds"] = seconds
     return summary
 

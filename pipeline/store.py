@@ -548,6 +548,25 @@ def read_items(engine: Engine, patient_ids=None, screens=None, item_ids=None) ->
         return _read(conn, item_ids=item_ids, patient_ids=patient_ids, screens=screens)
 
 
+def read_worklist(engine: Engine, run_ids) -> pd.DataFrame:
+    """The night's worklist (OUT/worklist.parquet), in rank order with the store's global rank:
+    the active items (open, reopened) and the items the runs `run_ids` inserted or changed
+    (upsert_items keeps the stored run_id of an item a run left unchanged, so an item closed by
+    a review and not touched since keeps an earlier run's id and is left out). One WHERE in SQL:
+    the closed and explained history is never read. The whole table stays in the store
+    (read_items, export_items, `show --include-closed`)."""
+    t = worklist_item
+    run_ids = sorted(set(map(str, run_ids)))
+    q = (select(*[t.c[c] for c in ITEM_COLUMNS])
+         .where(t.c.status.in_(ACTIVE_STATUSES) | t.c.run_id.in_(run_ids)))
+    with engine.connect() as conn:
+        rows = conn.execute(q).all()
+    if not rows:
+        return empty_items()
+    df = normalise_items(_frame(rows, ITEM_COLUMNS))   # sorted as _read does: NULLs last on both dialects
+    return df.sort_values(["rank", "item_id"], kind="mergesort", na_position="last").reset_index(drop=True)
+
+
 REVIEW_COLUMNS = ["item_id", "reviewed_at", "reviewer_role", "outcome", "note", "recorded_via"]
 
 
@@ -581,7 +600,10 @@ def _canonical(df: pd.DataFrame) -> pd.DataFrame:
 
 
 def _rerank(conn: Connection) -> None:
-    """Rank every stored item in one statement, the same order as worklist.rank_items."""
+    """Rank every stored item in one statement, the same order as worklist.rank_items. The
+    pipeline's only rank: a review changes an item's status and so every rank below it, and a
+    night's new items move the ranks of the stored ones, so the rank is a property of the whole
+    table, computed here (build_items leaves it NA)."""
     t = worklist_item
     group = case((t.c.status.in_(ACTIVE_STATUSES), 0), (t.c.status == STATUS_EXPLAINED, 1), else_=2)
     rn = func.row_number().over(order_by=[group, t.c.tier, t.c.score.desc(), t.c.ecg_at.desc(), t.c.item_id])

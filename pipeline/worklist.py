@@ -2,7 +2,8 @@
 
 What it does
     build_items           findings (+ the stored items of the same patients) -> worklist items
-    rank_items            documented score and rank (1 = review first); see docs/prioritisation.md
+    rank_items            documented score and rank (1 = review first); see docs/prioritisation.md.
+                          The pipeline ranks in the store (store._rerank, the same order in SQL)
     apply_reopen_rule     a closed or explained item reopens only for a more severe finding
     EXPLAINERS            one hook per screen marking items that later data explain away
 
@@ -367,7 +368,8 @@ def _episodes(new: pd.DataFrame, old: pd.DataFrame, episode_h: float) -> pd.Data
 def build_items(findings: pd.DataFrame, aligned: pd.DataFrame | None, existing: pd.DataFrame | None,
                 run_id: str, now: pd.Timestamp, episode_h: float = EPISODE_H, *,
                 explainers=None, location_weights=LOCATION_WEIGHTS) -> pd.DataFrame:
-    """Worklist items from a run's findings, ranked (see rank_items).
+    """Worklist items from a run's findings, scored; unranked (rank NA): the store ranks them
+    (store.upsert_items, in the order of rank_items), and rank_items ranks them in pandas.
 
     findings  the findings frame of screens/ (FINDING_COLUMNS).
     aligned   the run's aligned table: the ECG's care `location` for the score, and later
@@ -379,8 +381,7 @@ def build_items(findings: pd.DataFrame, aligned: pd.DataFrame | None, existing: 
               that did not change).
     now       the run's end timestamp (tz-aware), never the clock: first_flagged_at of new items,
               last_updated_at, and the reference for recency.
-    Returns the items that are new or changed tonight (ITEM_COLUMNS), ranked among themselves:
-    each one keeps its episode's most severe ECG (tier, then severity, then the earlier ECG) and
+    Returns the items that are new or changed tonight (ITEM_COLUMNS), with their score: each one keeps its episode's most severe ECG (tier, then severity, then the earlier ECG) and
     lists the episode's other ECGs in other_ecg_ids (JSON list). Nothing is deleted."""
     missing = [c for c in FINDING_COLUMNS if c not in findings.columns]
     if missing:
@@ -450,4 +451,10 @@ def build_items(findings: pd.DataFrame, aligned: pd.DataFrame | None, existing: 
     out = pool[~pool["_idle"] | changed].drop(columns="_idle")
     if out.empty:
         return empty_items()
-    return rank_items(normalise_items(out), location_weights)
+    # Scored here, ranked once, in the store: store.upsert_items re-ranks the whole table in SQL
+    # (store._rerank, the order of rank_items) in the transaction that writes these items, and a
+    # review re-ranks it again, since closing an item moves every item below it. A rank among
+    # tonight's items alone would be overwritten there and is not computed (rank stays NA).
+    out = normalise_items(out)
+    out["score"] = score_items(out, location_weights)
+    return out

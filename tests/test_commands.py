@@ -10,7 +10,7 @@ import pytest
 
 from cardiosieve.pipeline import commands
 from cardiosieve.pipeline.cli import EXIT_PARTIAL
-from cardiosieve.pipeline.store import OUTCOMES, open_store, read_items, sqlite_url, upsert_items
+from cardiosieve.pipeline.store import OUTCOMES, open_store, read_items, read_worklist, sqlite_url, upsert_items
 from cardiosieve.pipeline.files import write_parquet_atomic
 from cardiosieve.pipeline.worklist import build_items
 from cardiosieve.screens import FINDING_COLUMNS
@@ -45,8 +45,10 @@ def out(tmp_path):
     f = pd.DataFrame([finding("e1", "pat-A", tier=1), finding("e2", "pat-B"), finding("e3", "pat-C", severity=0.9)],
                      columns=FINDING_COLUMNS)
     items = build_items(f, None, None, "run-1", NIGHT)
-    upsert_items(open_store(sqlite_url(tmp_path)), items)
-    write_parquet_atomic(items, tmp_path / "worklist.parquet")
+    engine = open_store(sqlite_url(tmp_path))
+    upsert_items(engine, items)
+    write_parquet_atomic(read_worklist(engine, ["run-1"]), tmp_path / "worklist.parquet")   # as the run does
+    engine.dispose()
     return tmp_path
 
 

@@ -404,6 +404,31 @@ def test_show_prints_the_caution_and_the_patients_to_review(last_night):
     assert all(pid in last_night.shown for pid in top["patient_id"])
 
 
+def test_a_backfill_writes_the_worklist_from_its_last_chunk_with_every_chunks_items(tmp_path):
+    # Three chunks of one night on a fresh store, no reviews: every item is active or was changed
+    # by one of the run's chunks, so the published worklist is the store's whole table, ranked.
+    # The earlier chunks skip the file (stage_finish publishes the last chunk's).
+    from cardiosieve.pipeline.store import open_store, read_items, sqlite_url
+
+    out = tmp_path / "out"
+    bounds = ("2026-11-27T00:00:00Z", "2026-11-30T00:00:00Z")
+    summary = run_interval(str(LAKE), str(out), *bounds, config=str(CONFIG), quality=False, chunk_days=1)
+    assert summary["chunks"] == 3
+    worklist = pd.read_parquet(out / "worklist.parquet")
+    engine = open_store(sqlite_url(out), create=False)
+    stored = read_items(engine)
+    engine.dispose()
+    assert len(stored) > 0 and stored["run_id"].nunique() > 1   # items of more than one chunk
+    pd.testing.assert_frame_equal(worklist, stored)
+    assert worklist["rank"].tolist() == list(range(1, len(worklist) + 1))
+    lo, hi = interval(*bounds)
+    days = pd.date_range(lo, hi, freq="D")
+    assert [(stage_dir(out, a, b) / "worklist.parquet").exists() for a, b in zip(days[:-1], days[1:])] == [
+        False, False, True]
+    active = stored[stored["status"].isin(["open", "reopened"])]
+    assert summary["worklist"]["by_screen"] == active.groupby("screen").size().to_dict()
+
+
 # ---------------------------------------------------------------------------------------------
 # 6. The screening-only caution
 

@@ -270,6 +270,89 @@ def test_closed_item_reopens_for_a_more_severe_finding(engine):
     assert row["rank"] == 2
 
 
+# --- the night's worklist (OUT/worklist.parquet) ----------------------------------------------
+def reviewed_then_next_night(engine):
+    """Night 1: FIRST. Reviews close the items of e2 (p2) and e3 (p1, long_qt). Night 2 (run-2):
+    a more severe long_qt finding of p1 reopens e3's item, and p9 gets a new tier-2 item; e2's
+    item is not touched. Returns item_id by ECG of night 1 and night 2's new item."""
+    items, _ = night(engine, FIRST)
+    iid = items.set_index("ecg_id")["item_id"]
+    for e in ("e2", "e3"):
+        record_review(engine, iid[e], "finding_not_real", "registrar", None, pd.Timestamp("2026-03-02 08:00", tz="UTC"))
+    tonight, _ = night(engine, [finding("e7", "p1", "2026-03-02 20:00", screen="long_qt", tier=1, severity=0.6),
+                                finding("e9", "p9", "2026-03-02 21:00", severity=0.3)], now=NIGHT2, run_id="run-2")
+    return iid, tonight.set_index("ecg_id").loc["e9", "item_id"]
+
+
+def test_read_worklist_has_the_active_and_tonights_items_with_the_stores_rank(engine):
+    iid, new = reviewed_then_next_night(engine)
+    stored = read_items(engine).set_index("item_id")
+    assert stored.loc[iid["e2"], "status"] == STATUS_CLOSED and stored.loc[iid["e2"], "run_id"] == "run-1"
+    assert stored.loc[iid["e3"], "status"] == STATUS_REOPENED and stored.loc[iid["e3"], "run_id"] == "run-2"
+    w = store.read_worklist(engine, ["run-2"])
+    # e1 (open since night 1, untouched), e3's item (reopened tonight), e9 (new): not e2's (closed).
+    assert w["item_id"].tolist() == [iid["e1"], iid["e3"], new]
+    assert w["rank"].tolist() == stored.loc[w["item_id"], "rank"].tolist() == [1, 2, 3]
+    pd.testing.assert_frame_equal(w, read_items(engine, item_ids=w["item_id"]))
+    # Every active item of the store is in it, and no closed item shows up as open.
+    active = stored[stored["status"].isin(["open", "reopened"])]
+    assert set(active.index) <= set(w["item_id"])
+    assert not w["item_id"].isin(stored.index[stored["status"].eq(STATUS_CLOSED)]).any()
+
+
+def test_read_worklist_keeps_a_closed_item_the_run_changed(engine):
+    # A closed item that tonight's milder finding joins stays closed (reopen rule) but changed
+    # (its episode grew): it is the run's, so it is in the night's worklist, as closed.
+    items, _ = night(engine, FIRST)
+    iid = items.set_index("ecg_id").loc["e1", "item_id"]
+    record_review(engine, iid, "finding_not_real", "registrar", None, pd.Timestamp("2026-03-02 08:00", tz="UTC"))
+    night(engine, [finding("e5", "p1", "2026-03-02 20:00", tier=1, severity=0.5)], now=NIGHT2, run_id="run-2")
+    w = store.read_worklist(engine, ["run-2"]).set_index("item_id")
+    assert w.loc[iid, "status"] == STATUS_CLOSED
+    assert w.loc[iid, "rank"] == read_items(engine).set_index("item_id").loc[iid, "rank"]
+
+
+def test_stage_worklist_writes_the_active_and_changed_items_not_the_closed_history(tmp_path):
+    from cardiosieve.pipeline import run
+
+    out = tmp_path / "out"
+    nights = [("2026-03-01T02:00:00Z", "2026-03-02T02:00:00Z", FIRST),
+              ("2026-03-02T02:00:00Z", "2026-03-03T02:00:00Z",
+               [finding("e7", "p1", "2026-03-02 20:00", screen="long_qt", tier=1, severity=0.6),
+                finding("e9", "p9", "2026-03-02 21:00", severity=0.3)])]
+    written = []
+    for k, (start, end, rows) in enumerate(nights):
+        lo, hi = run.interval(start, end)
+        d = run.stage_dir(out, lo, hi)
+        f = findings(*rows)
+        f.to_parquet(d / "findings.parquet")
+        f[["ecg_id", "patient_id"]].assign(location="ward").to_parquet(d / "aligned.parquet")
+        summary = run.stage_worklist(out, start, end)
+        written.append(pd.read_parquet(d / "worklist.parquet"))
+        if k == 0:   # the morning after night 1: two reviews
+            engine = open_store(store.sqlite_url(out))
+            ids = written[0].set_index("ecg_id")["item_id"]
+            for e in ("e2", "e3"):
+                record_review(engine, ids[e], "finding_real", "registrar", None, pd.Timestamp("2026-03-02 08:00", tz="UTC"))
+            engine.dispose()
+    assert len(written[0]) == 3 and written[0]["rank"].tolist() == [1, 2, 3]
+    engine = open_store(store.sqlite_url(out))
+    stored = read_items(engine).set_index("item_id")
+    engine.dispose()
+    w = written[1]
+    closed_untouched = ids["e2"]
+    assert stored.loc[closed_untouched, "status"] == STATUS_CLOSED
+    assert closed_untouched not in set(w["item_id"])                  # reviewed last night, not touched
+    assert w.set_index("item_id").loc[ids["e3"], "status"] == STATUS_REOPENED   # changed tonight: in it
+    active = stored[stored["status"].isin(["open", "reopened"])]
+    assert sorted(w["item_id"]) == sorted(active.index)              # every active item, nothing else here
+    assert w["rank"].tolist() == stored.loc[w["item_id"], "rank"].tolist()   # the store's global rank
+    assert w["rank"].is_monotonic_increasing and w["rank"].notna().all()
+    tier1 = stored.index[stored["tier"].eq(1) & stored["status"].isin(["open", "reopened"])]
+    assert set(tier1) <= set(w["item_id"])
+    assert summary["by_screen"] == {"hyperkalemia": 2, "long_qt": 1}
+
+
 def test_upsert_guards_the_reopen_rule_even_without_stored_items_given_to_build(engine):
     items, _ = night(engine, FIRST)
     iid = items.set_index("ecg_id").loc["e1", "item_id"]

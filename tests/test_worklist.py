@@ -188,7 +188,7 @@ def test_tier_comes_before_score():
     f = findings(finding("e1", "p1", at="2026-03-02 02:00", tier=2, severity=1, lab_confirmed=1, lab_gap_min=0,
                          trend=1),
                  finding("e2", "p2", at="2026-03-01 00:00", tier=1, severity=0, lab_confirmed=0))
-    items = build(f, aligned({"ecg_id": "e1", "location": "ICU"}, {"ecg_id": "e2", "location": "clinic"}))
+    items = rank_items(build(f, aligned({"ecg_id": "e1", "location": "ICU"}, {"ecg_id": "e2", "location": "clinic"})))
     assert items["ecg_id"].tolist() == ["e2", "e1"]
     assert items["rank"].tolist() == [1, 2]
     assert items.set_index("ecg_id").loc["e1", "score"] == pytest.approx(0.95)
@@ -214,8 +214,16 @@ def test_lab_closeness_and_recency_lower_the_score():
     assert new - old == pytest.approx(0.10)
 
 
+def test_build_items_scores_but_leaves_the_rank_to_the_store():
+    # The rank is computed once, in the store (store._rerank on upsert and review, global); a
+    # rank among one night's items would be overwritten there.
+    items = build(findings(finding("e1", "p1", tier=1), finding("e2", "p2", tier=2)))
+    assert items["rank"].isna().all()
+    assert items["score"].notna().all()
+
+
 def test_rank_items_is_deterministic_for_ties():
-    items = build(findings(finding("e1", "p1"), finding("e2", "p2")))
+    items = rank_items(build(findings(finding("e1", "p1"), finding("e2", "p2"))))
     shuffled = items.iloc[::-1].reset_index(drop=True)
     assert rank_items(shuffled)["item_id"].tolist() == items["item_id"].tolist()
 
@@ -230,7 +238,7 @@ def test_haemolysed_potassium_followed_by_normal_repeat_is_explained_and_drops_i
     al = aligned({"ecg_id": "e1", "patient_id": "p1", "acquired_at": "2026-03-01 10:00", **HAEMOLYSED},
                  {"ecg_id": "e2", "patient_id": "p1", "acquired_at": "2026-03-01 14:00",
                   "k_mmol_l": 4.8, "k_hemolyzed": False, "k_offset_min": -10.0, "k_result_id": "k-2"})
-    items = build(f, al).set_index("ecg_id")
+    items = rank_items(build(f, al)).set_index("ecg_id")
     assert items.loc["e1", "status"] == STATUS_EXPLAINED
     assert "4.8 mmol/L" in items.loc["e1", "status_reason"] and "haemolysed" in items.loc["e1", "status_reason"]
     # Haemolysed K at 09:30, repeat at 13:50: 4.3 h later.
