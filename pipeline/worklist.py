@@ -381,8 +381,9 @@ def build_items(findings: pd.DataFrame, aligned: pd.DataFrame | None, existing: 
               that did not change).
     now       the run's end timestamp (tz-aware), never the clock: first_flagged_at of new items,
               last_updated_at, and the reference for recency.
-    Returns the items that are new or changed tonight (ITEM_COLUMNS), with their score: each one keeps its episode's most severe ECG (tier, then severity, then the earlier ECG) and
-    lists the episode's other ECGs in other_ecg_ids (JSON list). Nothing is deleted."""
+    Returns the items that are new or changed tonight (ITEM_COLUMNS), with their score: each one
+    keeps its episode's most severe ECG (tier, then severity, then the earlier ECG) and lists the
+    episode's other ECGs in other_ecg_ids (JSON list). Nothing is deleted."""
     missing = [c for c in FINDING_COLUMNS if c not in findings.columns]
     if missing:
         raise ValueError(f"findings lack columns: {', '.join(missing)}")
