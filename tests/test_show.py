@@ -206,3 +206,9 @@ def row_unreviewed_is_null(got) -> bool:
     """No review yet: the PPV is unknown (null), not 0."""
     row = {(r["screen"], r["tier"]): r for r in got["rows"]}[("st_deviation", 1)]
     return row["ppv"] is None and row["ppv_low"] is None
+
+
+def test_yield_of_a_store_with_no_items_says_so(tmp_path, capsys):
+    open_store(sqlite_url(tmp_path)).dispose()                 # a store made by a run that flagged nothing
+    assert main(["yield", "--out", str(tmp_path), "--since", "2026-07-01"]) == 0
+    assert capsys.readouterr().out.splitlines()[0] == "no items flagged since 2026-07-01"
