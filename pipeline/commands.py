@@ -282,12 +282,8 @@ def handle_show(args) -> int:
                      "items": itemview.as_records(head, tz)})
         return EXIT_OK
     if args.format == "csv":
-        from cardiosieve.pipeline.store import spreadsheet_safe
-        table = itemview.csv_frame(head, tz)
-        for c in table.columns:
-            if table[c].dtype == "str" or table[c].dtype == object:
-                table[c] = spreadsheet_safe(table[c])
-        table.to_csv(sys.stdout, index=False, lineterminator="\n")
+        from cardiosieve.pipeline.store import spreadsheet_safe_frame
+        spreadsheet_safe_frame(itemview.csv_frame(head, tz)).to_csv(sys.stdout, index=False, lineterminator="\n")
         return EXIT_OK
     print(CAUTION)
     print()

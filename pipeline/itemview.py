@@ -9,7 +9,8 @@ What it does
     format_item    one item in full: criteria with thresholds and sources, values, prior ECG,
                    episode, score parts, recorded reviews
     as_records     JSON-ready dicts (JSON texts parsed, times ISO 8601 with the offset)
-    csv_frame      the flat table `show --format csv` writes (spreadsheet-safe text)
+    csv_frame      the flat table `show --format csv` writes (made spreadsheet-safe by the command,
+                   store.spreadsheet_safe_frame, as `export` is)
 
 Times are shown in the site's time zone (`[site] timezone` of the site configuration, or
 `--timezone`), with their UTC offset, so that "02:10 +01:00" cannot be misread; the store keeps
@@ -24,7 +25,7 @@ from zoneinfo import ZoneInfo
 import pandas as pd
 
 from cardiosieve.pipeline import CAUTION
-from cardiosieve.pipeline.jsontext import loads_object, plain
+from cardiosieve.pipeline.jsontext import loads_list, loads_object, plain
 from cardiosieve.pipeline.worklist import STATUS_CLOSED, TIMESTAMP_COLUMNS
 
 UNKNOWN = "unknown"
@@ -38,14 +39,6 @@ CSV_FIELDS = ["rank", "tier", "screen", "status", "item_id", "patient_id", "sex"
               "ecg_at", "score", "summary", "caveats", "rule_version", "first_flagged_at"]
 CAVEAT_JOIN = " | "          # caveats in one CSV cell
 JSON_LISTS = ("caveats", "other_ecg_ids")
-
-
-def _json_list(text) -> list:
-    import json
-    if not isinstance(text, str) or not text.strip():
-        return []
-    value = json.loads(text)
-    return value if isinstance(value, list) else []
 
 
 def _territories(text) -> list[str]:
@@ -69,8 +62,8 @@ def dress(items: pd.DataFrame) -> pd.DataFrame:
 
 def select_items(items: pd.DataFrame, screens=None, tiers=None, statuses=None,
                  include_closed: bool = False) -> pd.DataFrame:
-    """The items `show` lists, in rank order. Without `statuses`, every item but the closed ones
-    (unless include_closed)."""
+    """The items `show` lists, in the order given (read_items: rank order). Without `statuses`,
+    every item but the closed ones (unless include_closed)."""
     keep = pd.Series(True, index=items.index)
     if screens:
         keep &= items["screen"].isin(list(screens))
@@ -80,7 +73,7 @@ def select_items(items: pd.DataFrame, screens=None, tiers=None, statuses=None,
         keep &= items["status"].isin(list(statuses))
     elif not include_closed:
         keep &= items["status"].ne(STATUS_CLOSED)
-    return items[keep].sort_values(["rank", "item_id"], kind="mergesort", na_position="last")
+    return items[keep]
 
 
 def at_location(items: pd.DataFrame, text: str | None) -> pd.DataFrame:
@@ -134,7 +127,7 @@ def format_list(items: pd.DataFrame, tz: str, width: int = 100) -> str:
         lines.append(_header(r))
         lines.append(pad + _patient_line(r, tz))
         lines += _wrap(r.summary if isinstance(r.summary, str) else UNKNOWN, width, pad)
-        for caveat in _json_list(r.caveats):
+        for caveat in loads_list(r.caveats):
             lines += _wrap(caveat, width, pad + "         ", first=pad + "caveat:  ")
         lines.append("")
     return "\n".join(lines)
@@ -157,13 +150,13 @@ def _value_text(value) -> str:
 def format_item(item: pd.Series, reviews: pd.DataFrame, tz: str, width: int = 100) -> str:
     """One item in full, for a person checking it by hand: what was flagged, on which values,
     against which thresholds from which sources (keys listed in docs/references.md)."""
-    r = pd.DataFrame([item]).itertuples().__next__()
+    r = next(pd.DataFrame([item]).itertuples())   # attribute access as in format_list (a Series has .rank())
     evidence = loads_object(item["evidence"])
     pad = "    "
     lines = [CAUTION, "", _header(r), pad + _patient_line(r, tz), ""]
     lines.append("summary")
     lines += _wrap(item["summary"] if isinstance(item["summary"], str) else UNKNOWN, width, pad)
-    caveats = _json_list(item["caveats"])
+    caveats = loads_list(item["caveats"])
     lines.append("caveats" + ("" if caveats else ": none"))
     for caveat in caveats:
         lines += _wrap(caveat, width, pad + "  ", first=pad + "- ")
@@ -187,7 +180,7 @@ def format_item(item: pd.Series, reviews: pd.DataFrame, tz: str, width: int = 10
     gap = values.get("prior_gap_h")
     lines.append("prior ECG: " + (UNKNOWN if prior is None else str(prior) +
                                   (f", {gap:.1f} h before" if isinstance(gap, (int, float)) else "")))
-    others = _json_list(item["other_ecg_ids"])
+    others = loads_list(item["other_ecg_ids"])
     lines.append(f"episode: {_local(item['episode_start'], tz)} to {_local(item['episode_end'], tz)}; "
                  f"other ECGs folded in: {', '.join(map(str, others)) or 'none'}")
     lines.append(f"flagged first {_local(item['first_flagged_at'], tz)}, updated {_local(item['last_updated_at'], tz)}, "
@@ -215,7 +208,7 @@ def as_records(items: pd.DataFrame, tz: str) -> list[dict]:
         r["evidence"] = loads_object(r["evidence"])
         r["score_parts"] = loads_object(r["score_parts"])
         for c in JSON_LISTS:
-            r[c] = _json_list(r[c])
+            r[c] = loads_list(r[c])
         r["territories"] = _territories(r["territories"])
         records.append({k: plain(r.get(k)) for k in RECORD_FIELDS})
     return records
@@ -225,7 +218,7 @@ def csv_frame(items: pd.DataFrame, tz: str) -> pd.DataFrame:
     """The flat table of `show --format csv`: CSV_FIELDS, caveats joined by " | ", times in `tz`
     with the offset, the caution in a last column of every row."""
     df = items[[c for c in CSV_FIELDS if c in items.columns]].copy()
-    df["caveats"] = [CAVEAT_JOIN.join(map(str, _json_list(t))) for t in items["caveats"]]
+    df["caveats"] = [CAVEAT_JOIN.join(map(str, loads_list(t))) for t in items["caveats"]]
     df["age_years"] = items["age_years"].round().astype("Int64")
     for c in ("ecg_at", "first_flagged_at"):
         df[c] = local_times(items[c], tz)

@@ -52,6 +52,14 @@ def to_json(obj: Any) -> str:
     return json.dumps(plain(obj, FINDING_DECIMALS), ensure_ascii=False, allow_nan=False)
 
 
+def loads_list(text) -> list:
+    """A JSON list from text; [] for a missing or blank text or JSON that is not a list."""
+    if not isinstance(text, str) or not text.strip():
+        return []
+    value = json.loads(text)
+    return value if isinstance(value, list) else []
+
+
 def loads_object(text) -> dict:
     """A JSON object from text; {} for a missing or blank text or JSON that is not an object."""
     if not isinstance(text, str) or not text.strip():

@@ -899,6 +899,15 @@ def spreadsheet_safe(s: pd.Series) -> pd.Series:
     return text.mask(risky, "'" + text)
 
 
+def spreadsheet_safe_frame(df: pd.DataFrame) -> pd.DataFrame:
+    """`df` with every text column made spreadsheet-safe (spreadsheet_safe); other columns as they are."""
+    out = df.copy()
+    for c in out.columns:
+        if out[c].dtype == "str":
+            out[c] = spreadsheet_safe(out[c])
+    return out
+
+
 def export_items(engine: Engine, fmt: str = "csv", dest=None) -> int:
     """Write all stored items in rank order to `dest` (a path, or a text stream such as
     sys.stdout) as CSV for spreadsheets, the screening caution in a last column `caution` of
@@ -908,10 +917,7 @@ def export_items(engine: Engine, fmt: str = "csv", dest=None) -> int:
 
     if fmt != "csv":
         raise ValueError(f"export: unknown format {fmt!r} (known: csv)")
-    df = read_items(engine)
-    text_cols = [c for c in ITEM_COLUMNS if df[c].dtype == "str"]
-    for c in text_cols:
-        df[c] = spreadsheet_safe(df[c])
+    df = spreadsheet_safe_frame(read_items(engine))
     for c in TIMESTAMP_COLUMNS:
         df[c] = df[c].dt.strftime("%Y-%m-%dT%H:%M:%SZ")
     if dest is None:

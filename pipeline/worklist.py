@@ -24,7 +24,7 @@ from typing import Callable
 import numpy as np
 import pandas as pd
 
-from cardiosieve.pipeline.jsontext import loads_object, plain
+from cardiosieve.pipeline.jsontext import loads_list, loads_object, plain
 from cardiosieve.screens import FINDING_COLUMNS, SCORE_PART_KEYS
 
 # ---------------------------------------------------------------------------------------------
@@ -423,7 +423,7 @@ def build_items(findings: pd.DataFrame, aligned: pd.DataFrame | None, existing: 
         for iid, ecg in zip(cand["item_id"].tolist(), cand["ecg_id"].astype(str).tolist()):
             ecgs.setdefault(iid, set()).add(ecg)
         for iid, others in zip(touched["item_id"], touched["other_ecg_ids"]):   # few stored items
-            ecgs[iid] |= set(json.loads(others) if isinstance(others, str) and others else [])
+            ecgs[iid] |= set(loads_list(others))
         prev = touched.set_index("item_id")
         start = pd.concat([cand.groupby("item_id")["acquired_at"].min(), prev["episode_start"]], axis=1).min(axis=1)
         end = pd.concat([cand.groupby("item_id")["acquired_at"].max(), prev["episode_end"]], axis=1).max(axis=1)
