@@ -34,8 +34,9 @@ FORMATS = ("text", "json", "csv")
 TEXT_WIDTH = (60, 110)       # text output wraps at the terminal's width, within these bounds
 
 
-def _add_store_options(p: argparse.ArgumentParser) -> None:
-    where = p.add_mutually_exclusive_group()
+def add_store_options(p: argparse.ArgumentParser, required: bool = False) -> None:
+    """--db URL or --out OUT, the one way every store command names its store."""
+    where = p.add_mutually_exclusive_group(required=required)
     where.add_argument("--db", metavar="URL",
                        help="SQLAlchemy URL, e.g. sqlite:///out/worklist.sqlite or postgresql+psycopg://...")
     where.add_argument("--out", metavar="OUT", help="output folder: use OUT/worklist.sqlite")
@@ -62,19 +63,19 @@ def register(subparsers) -> None:
     p.add_argument("--at", metavar="TIME", help="when reviewed (ISO 8601 with offset; default: now)")
     p.add_argument("--import-csv", metavar="FILE", help="import review outcomes from this CSV instead")
     p.add_argument("--timezone", metavar="TZ", help="IANA zone for CSV times written without an offset")
-    _add_store_options(p)
+    add_store_options(p)
     p.set_defaults(handler=handle_review, func=handle_review)
 
     p = subparsers.add_parser("yield", help="per screen and tier: items, reviewed, finding_real, PPV (95 %% Wilson)",
                               description="Review yield per screen and tier, for tuning thresholds. "
                                           "PPV = (finding_real + already_known) / reviewed.")
-    _add_store_options(p)
+    add_store_options(p)
     p.add_argument("--since", metavar="DATE", help="only items first flagged at or after DATE (UTC)")
     p.add_argument("--format", default="text", choices=FORMATS, help="text (default), json or csv")
     p.set_defaults(handler=handle_yield, func=handle_yield)
 
     p = subparsers.add_parser("export", help="write the stored worklist as CSV for spreadsheets")
-    _add_store_options(p)
+    add_store_options(p)
     p.add_argument("--format", default="csv", choices=["csv"], help="output format (csv)")
     p.add_argument("--output", "-o", metavar="FILE", default="-", help="file to write (default: standard output)")
     p.set_defaults(handler=handle_export, func=handle_export)
@@ -88,7 +89,7 @@ def register(subparsers) -> None:
                                           "offset. Shows patient identifiers: for a person at a screen, not "
                                           "for logs.")
     p.add_argument("item_id", nargs="?", metavar="ITEM_ID", help="show this item in full")
-    _add_store_options(p)
+    add_store_options(p)
     p.add_argument("--limit", type=int, default=20, help="items to list (default 20)")
     p.add_argument("--screen", action="append", metavar="SCREEN",
                    help=f"only this screen ({SCREEN_HELP}); repeat for several")

@@ -13,6 +13,7 @@ from __future__ import annotations
 import sys
 
 from cardiosieve.pipeline.cli import EXIT_BAD_INPUT, EXIT_OK
+from cardiosieve.pipeline.commands import add_store_options
 
 
 def register(subparsers) -> None:
@@ -27,7 +28,7 @@ def register(subparsers) -> None:
                        description="Apply the migrations the store lacks, in one transaction under the store's "
                                    "lock (a store already current is left alone). A store made before these "
                                    "migrations is recognised and recorded without a change. Back it up first.")
-    _store_options(p)
+    add_store_options(p, required=True)
     p.add_argument("--create", action="store_true",
                    help="make the store if there is none (otherwise a missing store is an error: a typo in "
                         "the path must not make a store somewhere new)")
@@ -36,15 +37,8 @@ def register(subparsers) -> None:
     p = sub.add_parser("current", help="print the store's schema revision",
                        description="Print the store's schema revision and whether this cardiosieve can use "
                                    "it as it is. Changes nothing.")
-    _store_options(p)
+    add_store_options(p, required=True)
     p.set_defaults(handler=handle_current)
-
-
-def _store_options(p) -> None:
-    where = p.add_mutually_exclusive_group(required=True)
-    where.add_argument("--db", metavar="URL",
-                       help="SQLAlchemy URL, e.g. sqlite:///out/worklist.sqlite or postgresql+psycopg://...")
-    where.add_argument("--out", metavar="OUT", help="output folder: use OUT/worklist.sqlite")
 
 
 def _usage(parser) -> int:
