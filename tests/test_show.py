@@ -193,7 +193,7 @@ def test_yield_as_json_and_csv_match_the_table(out, capsys):
     got = json.loads(capsys.readouterr().out)
     row = {(r["screen"], r["tier"]): r for r in got["rows"]}[("long_qt", 2)]
     assert (row["items"], row["reviewed"], row["finding_real"], row["ppv"]) == (1, 1, 1, 1.0)
-    assert row["ppv_low"] == pytest.approx(0.2065, abs=1e-4)     # Wilson 1/1: z^2/(1+z^2), by hand
+    assert row["ppv_low"] == pytest.approx(0.2065, abs=1e-4)     # Wilson 1/1 [WILSON-1927]: z^2/(1+z^2), by hand
     assert {(r["screen"], r["tier"]) for r in got["rows"]} == {("hyperkalemia", 2), ("hyperkalemia", 3),
                                                                 ("long_qt", 2), ("st_deviation", 1)}
     assert row_unreviewed_is_null(got)
