@@ -53,6 +53,13 @@ def out(tmp_path):
     return tmp_path
 
 
+@pytest.fixture(autouse=True)
+def terminal_width(monkeypatch):
+    """Text output wraps at the terminal's width (commands._width): fix it, so that a test's
+    expected line does not depend on the terminal pytest (or its worker process) runs in."""
+    monkeypatch.setenv("COLUMNS", "100")
+
+
 def show(capsys, *argv):
     code = main(["show", *map(str, argv)])
     captured = capsys.readouterr()
