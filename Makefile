@@ -38,6 +38,8 @@ test-py312:
 
 bench: install
 	$(BIN)/python bench/align.py
+	$(BIN)/python bench/rerank.py
+	$(BIN)/python bench/worklist.py
 	$(BIN)/python bench/nightly.py
 
 sample-lake: install

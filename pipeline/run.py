@@ -422,8 +422,8 @@ def stage_worklist(out, start, end, config=None, db=None, settings: Settings | N
                    earlier_run_ids=(), write: bool = True) -> dict:
     """Fold findings into worklist items, upsert them into the database in one transaction, and
     write the night's worklist to the stage's worklist.parquet (published by stage_finish): the
-    active items and the items this run inserted or changed, in rank order with the store's
-    global rank (store.read_worklist). `earlier_run_ids`: the run_ids of a backfill's earlier
+    active items and the items this run inserted or changed, in queue order with the store's
+    rank (store.read_worklist). `earlier_run_ids`: the run_ids of a backfill's earlier
     chunks, whose changed items belong to the run's worklist too. `write=False` (a backfill's
     earlier chunks, whose worklist.parquet stage_finish never publishes) skips the read-back and
     the file; the summary then has no by_screen."""

@@ -11,6 +11,9 @@ version, the revision id the version in four digits:
     0001  the baseline: outcomes confirmed / not_confirmed (the first release; no version tables)
     0002  outcomes renamed finding_real / finding_not_real (staff read "confirmed" as a signed
           report); creates cardiosieve_schema
+    0003  `rank` is the place in the review queue: explained and closed items lose theirs
+          (NULL); indexes on status and run_id, so that ranking and the night's read-back
+          follow the queue's length, not the store's history
 The nightly run (open_store with create=True) and `cardiosieve db upgrade` (upgrade_store)
 bring a store to HEAD_REVISION in one transaction under the store's lock (see _upgrade); a
 store of a release before the migrations is recognised by its tables and stamped first. The
@@ -49,7 +52,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 from sqlalchemy import (CheckConstraint, Column, DateTime, Float, ForeignKey, Index, Integer, MetaData,
-                        String, Table, Text, TypeDecorator, UniqueConstraint, bindparam, case,
+                        String, Table, Text, TypeDecorator, UniqueConstraint, bindparam,
                         column, create_engine, event, func, insert, inspect, select, table, update)
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.engine import URL, Connection, Engine, make_url
@@ -57,9 +60,9 @@ from sqlalchemy.exc import ArgumentError, NoSuchModuleError
 
 from cardiosieve.pipeline.errors import BadInputError
 from cardiosieve.pipeline.files import PRIVATE_FILE_MODE, write_atomic
-from cardiosieve.pipeline.worklist import (ACTIVE_STATUSES, ITEM_COLUMNS, STATUS_CLOSED, STATUS_EXPLAINED,
-                               STATUS_REOPENED, STATUSES, TIMESTAMP_COLUMNS, apply_reopen_rule,
-                               empty_items, normalise_items)
+from cardiosieve.pipeline.worklist import (ACTIVE_STATUSES, ITEM_COLUMNS, STATUS_CLOSED, STATUS_REOPENED,
+                               STATUSES, TIMESTAMP_COLUMNS, apply_reopen_rule, empty_items,
+                               normalise_items, queue_order)
 
 # Review outcomes: the one place they are named. The review column is String(16):
 # "finding_not_real" is exactly 16 characters, so a longer name needs a wider column.
@@ -160,6 +163,8 @@ worklist_item = Table(
     CheckConstraint("tier BETWEEN 1 AND 4", name="ck_worklist_item_tier"),
     Index("ix_worklist_item_patient_screen", "patient_id", "screen"),
     Index("ix_worklist_item_rank", "rank"),
+    Index("ix_worklist_item_status", "status"),     # the queue: _rerank, read_worklist (schema 3)
+    Index("ix_worklist_item_run_id", "run_id"),     # what a run changed: read_worklist (schema 3)
 )
 
 review = Table(
@@ -178,7 +183,7 @@ review = Table(
 
 # The schema's version. Each is one Alembic revision in pipeline/migrations/versions, its id the
 # version in four digits; a new one bumps this number (DEVELOPERS.md, "Changing the store's schema").
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 HEAD_REVISION = f"{SCHEMA_VERSION:04d}"
 MIGRATIONS_DIR = Path(__file__).resolve().parent / "migrations"
 # Alembic's revision table. Not its default alembic_version: another application using Alembic
@@ -538,8 +543,7 @@ def _read(conn: Connection, item_ids=None, patient_ids=None, screens=None, for_u
             rows = [r for r in rows if r.patient_id in wanted]
     if not rows:
         return empty_items()
-    df = normalise_items(_frame(rows, ITEM_COLUMNS))
-    return df.sort_values(["rank", "item_id"], kind="mergesort", na_position="last").reset_index(drop=True)
+    return queue_order(normalise_items(_frame(rows, ITEM_COLUMNS)))
 
 
 def read_items(engine: Engine, patient_ids=None, screens=None, item_ids=None) -> pd.DataFrame:
@@ -549,7 +553,7 @@ def read_items(engine: Engine, patient_ids=None, screens=None, item_ids=None) ->
 
 
 def read_worklist(engine: Engine, run_ids) -> pd.DataFrame:
-    """The night's worklist (OUT/worklist.parquet), in rank order with the store's global rank:
+    """The night's worklist (OUT/worklist.parquet), in queue order with the store's rank:
     the active items (open, reopened) and the items the runs `run_ids` inserted or changed
     (upsert_items keeps the stored run_id of an item a run left unchanged, so an item closed by
     a review and not touched since keeps an earlier run's id and is left out). One WHERE in SQL:
@@ -563,8 +567,7 @@ def read_worklist(engine: Engine, run_ids) -> pd.DataFrame:
         rows = conn.execute(q).all()
     if not rows:
         return empty_items()
-    df = normalise_items(_frame(rows, ITEM_COLUMNS))   # sorted as _read does: NULLs last on both dialects
-    return df.sort_values(["rank", "item_id"], kind="mergesort", na_position="last").reset_index(drop=True)
+    return queue_order(normalise_items(_frame(rows, ITEM_COLUMNS)))
 
 
 REVIEW_COLUMNS = ["item_id", "reviewed_at", "reviewer_role", "outcome", "note", "recorded_via"]
@@ -600,15 +603,19 @@ def _canonical(df: pd.DataFrame) -> pd.DataFrame:
 
 
 def _rerank(conn: Connection) -> None:
-    """Rank every stored item in one statement, the same order as worklist.rank_items. The
-    pipeline's only rank: a review changes an item's status and so every rank below it, and a
-    night's new items move the ranks of the stored ones, so the rank is a property of the whole
-    table, computed here (build_items leaves it NA)."""
+    """The review queue's ranks, the same as worklist.rank_items: 1 to n over the active items
+    (open, reopened) in queue order, NULL for the explained and closed items, which have left
+    the queue. The pipeline's only rank (build_items leaves it NA): a review moves every active
+    item below the one it closes, and a night's new items move the stored ones below them.
+    Both statements read the active items only (ix_worklist_item_status) and write only ranks
+    that change, so the cost follows the queue's length, not the store's history."""
     t = worklist_item
-    group = case((t.c.status.in_(ACTIVE_STATUSES), 0), (t.c.status == STATUS_EXPLAINED, 1), else_=2)
-    rn = func.row_number().over(order_by=[group, t.c.tier, t.c.score.desc(), t.c.ecg_at.desc(), t.c.item_id])
-    ordered = select(t.c.item_id.label("ordered_id"), rn.label("rn")).subquery("ordered")
-    conn.execute(update(t).where(t.c.item_id == ordered.c.ordered_id).values(rank=ordered.c.rn))
+    active = t.c.status.in_(ACTIVE_STATUSES)
+    conn.execute(update(t).where(~active, t.c.rank.is_not(None)).values(rank=None))
+    rn = func.row_number().over(order_by=[t.c.tier, t.c.score.desc(), t.c.ecg_at.desc(), t.c.item_id])
+    ordered = select(t.c.item_id.label("ordered_id"), rn.label("rn")).where(active).subquery("ordered")
+    conn.execute(update(t).where(t.c.item_id == ordered.c.ordered_id, t.c.rank.is_distinct_from(ordered.c.rn))
+                 .values(rank=ordered.c.rn))
 
 
 def upsert_items(engine: Engine, items: pd.DataFrame) -> dict:

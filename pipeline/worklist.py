@@ -2,7 +2,9 @@
 
 What it does
     build_items           findings (+ the stored items of the same patients) -> worklist items
-    rank_items            documented score and rank (1 = review first); see docs/prioritisation.md.
+    queue_order           the review queue's order (status group, tier, score, ECG time, item_id).
+    rank_items            documented score and rank (the place in the review queue, 1 = review
+                          first; none for explained or closed items); see docs/prioritisation.md.
                           The pipeline ranks in the store (store._rerank, the same order in SQL)
     apply_reopen_rule     a closed or explained item reopens only for a more severe finding
     EXPLAINERS            one hook per screen marking items that later data explain away
@@ -174,20 +176,32 @@ def score_items(items: pd.DataFrame, location_weights=LOCATION_WEIGHTS) -> pd.Se
     return score.round(SCORE_DECIMALS)
 
 
-def rank_items(items: pd.DataFrame, location_weights=LOCATION_WEIGHTS) -> pd.DataFrame:
-    """Items with `score` and `rank` (1 = review first), returned in rank order.
+def queue_order(items: pd.DataFrame) -> pd.DataFrame:
+    """Items in the review queue's order: status group (open/reopened, then explained, then
+    closed), tier (1 first), score (high first), ECG time (recent first), item_id (a fixed
+    tie-break). Among the active items this is the order of `rank`."""
+    group = items["status"].map(STATUS_RANK_GROUP).fillna(0).astype(int)
+    key = pd.DataFrame({"_group": group, "tier": items["tier"], "score": items["score"], "ecg_at": items["ecg_at"],
+                        "item_id": items["item_id"]}, index=items.index)
+    order = key.sort_values(list(key.columns), ascending=[True, True, False, False, True], kind="mergesort").index
+    return items.loc[order].reset_index(drop=True)
 
-    Order: status group (open/reopened, then explained, then closed), tier (1 first), score
-    (high first), ECG time (recent first), item_id (a fixed tie-break)."""
+
+def rank_items(items: pd.DataFrame, location_weights=LOCATION_WEIGHTS) -> pd.DataFrame:
+    """Items with `score` and `rank`, returned in queue order (`queue_order`). `rank` is the
+    place in the review queue: 1 to n over the active items (open, reopened), 1 reviewed
+    first; an explained or closed item has left the queue and has no rank (NA). The store
+    ranks the same way in SQL (store._rerank)."""
     if items.empty:
         return normalise_items(items) if len(items.columns) else empty_items()
     df = items.copy()
     df["score"] = score_items(df, location_weights)
-    df["_group"] = df["status"].map(STATUS_RANK_GROUP).fillna(0).astype(int)
-    df = df.sort_values(["_group", "tier", "score", "ecg_at", "item_id"],
-                        ascending=[True, True, False, False, True], kind="mergesort")
-    df["rank"] = np.arange(1, len(df) + 1)
-    return normalise_items(df.drop(columns="_group"))
+    df = queue_order(df)
+    active = df["status"].isin(ACTIVE_STATUSES).to_numpy()
+    rank = np.full(len(df), np.nan)
+    rank[active] = np.arange(1, int(active.sum()) + 1)     # the active items come first
+    df["rank"] = rank
+    return normalise_items(df)
 
 
 def severity_key(items: pd.DataFrame) -> pd.DataFrame:

@@ -47,16 +47,20 @@ def test_read_only_commands_on_a_store_behind_exit_2_naming_db_upgrade(capsys, v
     assert after["revision"] is None and after["version"] is None and after["ddl"] == before["ddl"]
 
 
-def test_read_only_commands_use_a_store_of_the_release_before_as_it_is(capsys, tmp_path):
-    build_v2_store(f"sqlite:///{tmp_path / 'worklist.sqlite'}").dispose()
+def test_a_store_of_the_release_before_is_refused_by_read_only_commands_until_upgraded(capsys, tmp_path):
+    # The release before the migrations made schema version 2; this code needs HEAD_REVISION.
+    url = f"sqlite:///{tmp_path / 'worklist.sqlite'}"
+    build_v2_store(url).dispose()
+    code, out, err = cli(capsys, "show", "--out", tmp_path)
+    assert code == EXIT_BAD_INPUT and out == "" and "schema revision 0002" in err and "db upgrade" in err
+    code, out, _ = cli(capsys, "db", "current", "--out", tmp_path)
+    assert code == EXIT_OK and out.startswith(f"0002 (this cardiosieve needs {HEAD_REVISION}")
+    assert look(url)["revision"] is None                                  # still unstamped, unchanged
+    assert cli(capsys, "db", "upgrade", "--out", tmp_path)[:2] == (
+        EXIT_OK, f"worklist store upgraded from schema revision 0002 to {HEAD_REVISION}\n")
+    assert look(url)["revision"] == [(HEAD_REVISION,)]
     code, out, _ = cli(capsys, "show", "--out", tmp_path)
     assert code == EXIT_OK and "(4 stored" in out
-    code, out, _ = cli(capsys, "db", "current", "--out", tmp_path)
-    assert code == EXIT_OK and out.startswith(f"{HEAD_REVISION} (current; made before the migrations")
-    assert look(f"sqlite:///{tmp_path / 'worklist.sqlite'}")["revision"] is None   # still unstamped
-    assert cli(capsys, "db", "upgrade", "--out", tmp_path)[:2] == (
-        EXIT_OK, f"worklist store already at schema revision {HEAD_REVISION}\n")
-    assert look(f"sqlite:///{tmp_path / 'worklist.sqlite'}")["revision"] == [(HEAD_REVISION,)]
 
 
 def test_db_upgrade_makes_no_store_unless_asked(capsys, tmp_path):

@@ -70,6 +70,17 @@ V1_REVIEWS = [   # (item, hours after NIGHT1, role, outcome, note)
 RENAMED = {"confirmed": "finding_real", "not_confirmed": "finding_not_real"}
 
 
+def queue_ranked(items: pd.DataFrame) -> pd.DataFrame:
+    """What revision 0003 makes of stored items (as `table` reads them): the active items
+    ranked 1 to n by tier, score (high first), ECG time (recent first) and item_id, every other
+    item without a rank. Written out here, not taken from the code under test."""
+    active = items[items["status"].isin(["open", "reopened"])]
+    order = active.sort_values(["tier", "score", "ecg_at", "item_id"], ascending=[True, False, False, True]).index
+    rank = pd.Series(float("nan"), index=items.index)
+    rank[order] = range(1, len(order) + 1)
+    return items.assign(rank=rank)
+
+
 def build_old_store(url, ddl=V1_DDL, outcomes=V1_OUTCOMES, renamed=None):
     """A store of an earlier release at `url` (by default version 1) holding items, closed items
     and reviews (the version-1 outcomes, or renamed by `renamed`)."""
@@ -197,9 +208,9 @@ def test_opening_a_version_1_store_renames_outcomes_and_keeps_every_row(empty_ur
     after = snapshot(engine)
     expected_reviews = before["reviews"].assign(outcome=before["reviews"]["outcome"].replace(RENAMED))
     pd.testing.assert_frame_equal(after["reviews"], expected_reviews)   # same ids, times, notes
-    expected_items = before["items"].assign(status_reason=before["items"]["status_reason"].replace(
-        {f"reviewed: {o}": f"reviewed: {n}" for o, n in RENAMED.items()}))
-    pd.testing.assert_frame_equal(after["items"], expected_items)
+    expected_items = queue_ranked(before["items"].assign(status_reason=before["items"]["status_reason"].replace(
+        {f"reviewed: {o}": f"reviewed: {n}" for o, n in RENAMED.items()})))     # 0002, then 0003
+    pd.testing.assert_frame_equal(after["items"], expected_items, check_dtype=False)
     assert sorted(after["items"]["status_reason"].dropna()) == [
         "reviewed: already_known", "reviewed: finding_not_real", "reviewed: finding_real"]
     assert after["version"] == [(1, SCHEMA_VERSION)] and after["revision"] == [(HEAD_REVISION,)]
@@ -336,25 +347,56 @@ def test_processes_upgrading_a_version_1_store_at_once_migrate_it_once(empty_url
     engine.dispose()
 
 
-# --- version 2 of the release before the migrations: stamped, nothing else changes ---------------
-def test_a_store_of_the_release_before_the_migrations_is_stamped_without_a_change(empty_url):
+# --- version 2 of the release before the migrations: stamped at 0002, then upgraded ------------
+def test_a_store_of_the_release_before_the_migrations_is_stamped_then_upgraded(empty_url):
     build_v2_store(empty_url).dispose()
     before = look(empty_url)
     assert before["version"] == [(1, 2)] and before["revision"] is None
 
-    # Commands that only use a store read it as it is (its schema is current) and stamp nothing.
-    reader = open_store(empty_url, create=False)
-    assert len(read_items(reader)) == 4
-    reader.dispose()
-    assert store_revision(empty_url) == (HEAD_REVISION, False)
+    # Commands that only use a store refuse one behind this code, and change nothing.
+    assert store_revision(empty_url) == ("0002", False)
+    with pytest.raises(StoreSchemaError, match="cardiosieve db upgrade"):
+        open_store(empty_url, create=False)
     assert_same(look(empty_url), before)
 
-    engine = open_store(empty_url)   # the nightly run's open: records the revision
+    engine = open_store(empty_url)   # the nightly run's open: stamps 0002, then runs 0003
     after = snapshot(engine)
     engine.dispose()
-    assert after["revision"] == [(HEAD_REVISION,)]
-    assert_same(after, before, skip=("revision",))   # rows, checks, indexes and (SQLite) every CREATE
+    assert after["revision"] == [(HEAD_REVISION,)] and after["version"] == [(1, SCHEMA_VERSION)]
+    pd.testing.assert_frame_equal(after["items"], queue_ranked(before["items"]), check_dtype=False)
+    assert_same(after, before, skip=("revision", "version", "items", "ddl"))   # reviews, checks, review's indexes
     assert store_revision(empty_url) == (HEAD_REVISION, True)
+
+
+def test_revision_3_ranks_the_queue_only_and_indexes_status_and_run_id(empty_url):
+    """From 0002, where every item held a global rank (closed ones after the active ones), to
+    0003: the closed and explained items lose their rank, the active ones keep 1 to n in queue
+    order, no row is lost, and the two indexes exist."""
+    old = build_store_at(empty_url, "0002")
+    items, _ = night(old, V1_FINDINGS + [finding("e5", "p5", "2026-03-01 21:00", tier=1, severity=0.8),
+                                         finding("e6", "p6", "2026-03-01 22:00", tier=3)])
+    ids = items.set_index("ecg_id")["item_id"]
+    ranks = {ids[e]: r for r, e in enumerate(["e5", "e1", "e2", "e3", "e4", "e6"], start=1)}   # a 0002 global rank
+    with old.begin() as conn:
+        for iid, r in ranks.items():
+            conn.execute(worklist_item.update().where(worklist_item.c.item_id == iid).values(rank=r))
+        for e, status in (("e1", STATUS_CLOSED), ("e3", "explained")):
+            conn.execute(worklist_item.update().where(worklist_item.c.item_id == ids[e]).values(status=status))
+        conn.execute(worklist_item.update().where(worklist_item.c.item_id == ids["e4"]).values(rank=None))
+    before = table(old)
+    old.dispose()
+
+    engine = open_store(empty_url)
+    after = table(engine)
+    with engine.connect() as conn:
+        indexes = {i["name"] for i in inspect(conn).get_indexes("worklist_item")}
+        version = conn.execute(cardiosieve_schema.select()).all()
+    engine.dispose()
+    pd.testing.assert_frame_equal(after, queue_ranked(before), check_dtype=False)
+    by_ecg = after.set_index("ecg_id")["rank"]
+    assert (by_ecg["e5"], by_ecg["e6"], sorted(by_ecg[["e2", "e4"]])) == (1, 4, [2, 3])   # by tier
+    assert by_ecg[["e1", "e3"]].isna().all()
+    assert {"ix_worklist_item_status", "ix_worklist_item_run_id"} <= indexes and version == [(1, 3)]
 
 
 # --- new stores, and the migrated schema against store.metadata ----------------------------------

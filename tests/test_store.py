@@ -237,6 +237,33 @@ def test_rank_is_global_across_nights(engine):
     assert ranked["ecg_id"].tolist()[:2] == ["e9", "e1"]   # both tier 1; e9 is more severe
 
 
+def test_a_night_ranks_the_queue_and_leaves_the_closed_history_unwritten(sqlite_engine):
+    """The rank is the place in the review queue (active items, 1 to n); an explained or closed
+    item has none. A night's upsert writes the ranks of the queue only: a closed row of an
+    earlier night is not rewritten when a new item enters the queue above everything (the
+    night's cost follows the queue, not the store's history). A trigger records each row whose
+    rank an UPDATE touches."""
+    engine = sqlite_engine
+    items, _ = night(engine, FIRST)
+    iid = items.set_index("ecg_id")["item_id"]
+    for e in ("e2", "e3"):
+        record_review(engine, iid[e], "finding_real", "registrar", None, pd.Timestamp("2026-03-02 08:00", tz="UTC"))
+    with engine.begin() as conn:
+        conn.execute(text("CREATE TABLE rank_writes (item_id TEXT, status TEXT)"))
+        conn.execute(text("CREATE TRIGGER rank_written AFTER UPDATE OF rank ON worklist_item "
+                          "BEGIN INSERT INTO rank_writes VALUES (new.item_id, new.status); END"))
+    night(engine, [finding("e9", "p9", "2026-03-02 20:00", tier=1, severity=0.9)], now=NIGHT2, run_id="run-2")
+    with engine.connect() as conn:
+        written = conn.execute(text("SELECT item_id, status FROM rank_writes")).all()
+    ranked = read_items(engine)
+    active = ranked[ranked["status"].isin(["open", "reopened"])]
+    assert active["rank"].tolist() == list(range(1, len(active) + 1))
+    assert active["ecg_id"].iloc[0] == "e9"                      # the new tier-1 item heads the queue
+    assert ranked["rank"].iloc[len(active):].isna().all()        # then the closed ones, unranked
+    assert written and {status for _, status in written} <= {"open", "reopened"}
+    assert not {i for i, _ in written} & {iid["e2"], iid["e3"]}
+
+
 def test_next_night_updates_the_item_and_keeps_first_flagged_at(engine):
     night(engine, FIRST)
     items, counts = night(engine, [finding("e4", "p1", "2026-03-02 20:00", tier=1, severity=0.9)],
@@ -309,7 +336,9 @@ def test_read_worklist_keeps_a_closed_item_the_run_changed(engine):
     night(engine, [finding("e5", "p1", "2026-03-02 20:00", tier=1, severity=0.5)], now=NIGHT2, run_id="run-2")
     w = store.read_worklist(engine, ["run-2"]).set_index("item_id")
     assert w.loc[iid, "status"] == STATUS_CLOSED
-    assert w.loc[iid, "rank"] == read_items(engine).set_index("item_id").loc[iid, "rank"]
+    # Out of the review queue: no rank, listed after the active items.
+    assert pd.isna(w.loc[iid, "rank"]) and pd.isna(read_items(engine).set_index("item_id").loc[iid, "rank"])
+    assert w.index[-1] == iid and w["rank"].iloc[:-1].tolist() == list(range(1, len(w)))
 
 
 def test_stage_worklist_writes_the_active_and_changed_items_not_the_closed_history(tmp_path):
@@ -394,6 +423,8 @@ def test_record_review_closes_the_item_and_it_drops_to_the_end(engine):
     after = read_items(engine)
     assert after.iloc[-1]["item_id"] == top and after.iloc[-1]["status"] == STATUS_CLOSED
     assert after.iloc[-1]["status_reason"] == "reviewed: finding_real"
+    # It has left the queue (no rank); the items below it moved up, the queue still 1 to n.
+    assert pd.isna(after.iloc[-1]["rank"]) and after["rank"].iloc[:-1].tolist() == list(range(1, len(after)))
     # the same review again is recognised, not stored twice
     assert not record_review(engine, top, "finding_real", "cardiology registrar", None,
                              pd.Timestamp("2026-03-02 09:00", tz="UTC"))

@@ -238,12 +238,15 @@ def test_haemolysed_potassium_followed_by_normal_repeat_is_explained_and_drops_i
     al = aligned({"ecg_id": "e1", "patient_id": "p1", "acquired_at": "2026-03-01 10:00", **HAEMOLYSED},
                  {"ecg_id": "e2", "patient_id": "p1", "acquired_at": "2026-03-01 14:00",
                   "k_mmol_l": 4.8, "k_hemolyzed": False, "k_offset_min": -10.0, "k_result_id": "k-2"})
-    items = rank_items(build(f, al)).set_index("ecg_id")
+    ranked = rank_items(build(f, al))
+    items = ranked.set_index("ecg_id")
     assert items.loc["e1", "status"] == STATUS_EXPLAINED
     assert "4.8 mmol/L" in items.loc["e1", "status_reason"] and "haemolysed" in items.loc["e1", "status_reason"]
     # Haemolysed K at 09:30, repeat at 13:50: 4.3 h later.
     assert "4.3 h" in items.loc["e1", "status_reason"]
-    assert items.loc["e1", "rank"] > items.loc["e9", "rank"]   # tier 1 but explained: below tier 2
+    # Tier 1 but explained: out of the review queue (no rank), listed below the tier-2 item.
+    assert ranked["ecg_id"].tolist() == ["e9", "e1"]
+    assert items.loc["e9", "rank"] == 1 and pd.isna(items.loc["e1", "rank"])
 
 
 @pytest.mark.parametrize("later", [
