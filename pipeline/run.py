@@ -458,15 +458,51 @@ def stage_worklist(out, start, end, config=None, db=None, settings: Settings | N
             "by_screen": {k: int(v) for k, v in active.groupby("screen").size().items()} if len(active) else {}}
 
 
-CHUNK_DAYS = 31   # a long backfill runs in chunks of at most this many days: memory stays bounded
+# A long backfill runs in chunks, in time order, so that memory stays bounded. Their length
+# follows the lake: whole days, as many as hold at most CHUNK_ECG_ROWS ECG rows by the ECG
+# partitions' footers (at least one day a chunk), so that a busy network's chunks are no larger
+# than a quiet site's. Measured on the generated network year (docs/performance.md,
+# 2026-12-04): 66,000, 100,000 and 200,000 rows a chunk took 143, 140 and 141 s (the length is
+# no lever on speed) with the gate worker's peak memory at 1.6, 2.1 and 2.3 GB and the run's
+# at 1.7, 1.7 and 2.1 GB.
+CHUNK_ECG_ROWS = 100_000
+
+
+def chunk_bounds(lake, lo: pd.Timestamp, hi: pd.Timestamp, chunk_days: float | None = None,
+                 max_rows: int | None = None) -> list[pd.Timestamp]:
+    """The chunk edges of [lo, hi): every `chunk_days` days when given; else whole days from
+    `lo`, each chunk as many as hold at most `max_rows` ECG rows (default CHUNK_ECG_ROWS)
+    counted from the partitions' footers (no data pages). An interval of a day or less is one
+    chunk."""
+    if chunk_days is not None:
+        step = pd.Timedelta(days=chunk_days)
+        bounds = [lo]
+        while bounds[-1] + step < hi:
+            bounds.append(bounds[-1] + step)
+        return bounds + [hi]
+    max_rows = CHUNK_ECG_ROWS if max_rows is None else max_rows
+    day = pd.Timedelta(days=1)
+    if hi - lo <= day:
+        return [lo, hi]
+    per_day = _rows_per_day(lake, c.ECG, lo.strftime("%Y-%m-%d"), (hi - pd.Timedelta(microseconds=1)).strftime("%Y-%m-%d"))
+    bounds, rows, t = [lo], 0, lo
+    while t < hi:
+        n = per_day.get(t.strftime("%Y-%m-%d"), 0)
+        if rows and n and rows + n > max_rows:
+            bounds.append(t)
+            rows = 0
+        rows += n
+        t += day
+    return bounds + [hi]
 
 
 def run_interval(lake, out, start, end, config=None, db=None, quality: bool = True,
-                 chunk_days: float = CHUNK_DAYS, gate=None) -> dict:
+                 chunk_days: float | None = None, gate=None) -> dict:
     """The whole job for ECGs acquired in [start, end); returns the run summary (counts and
     seconds per stage only) and writes it to OUT/run_summary.json beside the worklist, the
-    aligned table and the rejects. An interval longer than `chunk_days` runs chunk by chunk,
-    in time order, so that the worklist folds episodes exactly as nightly runs would.
+    aligned table and the rejects. A long interval runs chunk by chunk (`chunk_bounds`: sized
+    by the lake's ECG rows, or every `chunk_days` days when given), in time order, so that the
+    worklist folds episodes as nightly runs would.
 
     With the quality gate on, its verdict comes from a worker process (pipeline/gateworker.py):
     `gate`, one the caller started as early as it could (the CLI does, before importing this
@@ -479,11 +515,7 @@ def run_interval(lake, out, start, end, config=None, db=None, quality: bool = Tr
     lo, hi = interval(start, end)
     out = usable_out(out)
     check_store_url(db or sqlite_url(out))
-    step = pd.Timedelta(days=chunk_days)
-    bounds = [lo]
-    while bounds[-1] + step < hi:
-        bounds.append(bounds[-1] + step)
-    bounds.append(hi)
+    bounds = chunk_bounds(lake, lo, hi, chunk_days)
     with run_lock(out, db or sqlite_url(out)), _gate(quality, config, gate) as gate:   # one run per OUT and store
         clean_leftovers(out)                      # what a crashed run left behind
         progress = Progress(bounds)

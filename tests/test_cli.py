@@ -2,6 +2,7 @@
 import subprocess
 import sys
 
+import pandas as pd
 import pytest
 
 from cardiosieve.pipeline.cli import main
@@ -420,3 +421,18 @@ def test_a_backfill_logs_each_chunk_with_the_time_left(tmp_path, caplog):
     assert [m.split(" [")[0] for m in done] == ["chunk 1/3", "chunk 2/3", "chunk 3/3"]
     assert all("left" in m for m in done[:2]) and "left" not in done[2]
     assert not any("SECRET" in r.getMessage() for r in caplog.records)
+
+
+def test_backfill_chunks_follow_the_ecg_rows_of_the_partitions(tmp_path):
+    """Whole days, each chunk as many as hold at most max_rows ECG rows (a day over the limit
+    is a chunk alone, a day without a partition counts none); a fixed length when asked."""
+    from cardiosieve.pipeline.run import chunk_bounds
+
+    per_day = {"2026-11-01": 3, "2026-11-02": 3, "2026-11-03": 1, "2026-11-04": 5, "2026-11-06": 2, "2026-11-07": 9}
+    ecg = [ecg_row(f"E{day}-{k}", f"P{k}", f"{day}T10:{k:02d}:00Z") for day, n in per_day.items() for k in range(n)]
+    lake = write_lake(tmp_path / "lake", ecg=ecg, patients=[patient_row(f"P{k}") for k in range(9)])
+    t = lambda day: pd.Timestamp(f"2026-11-{day:02d}", tz="UTC")        # noqa: E731
+    assert chunk_bounds(lake, t(1), t(9), max_rows=5) == [t(1), t(2), t(4), t(6), t(7), t(9)]
+    assert chunk_bounds(lake, t(1), t(9), max_rows=100) == [t(1), t(9)]
+    assert chunk_bounds(lake, t(4), t(5), max_rows=1) == [t(4), t(5)]        # one day: one chunk
+    assert chunk_bounds(lake, t(1), t(9), chunk_days=3) == [t(1), t(4), t(7), t(9)]
