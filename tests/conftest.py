@@ -20,13 +20,31 @@ def _worker_database() -> None:
     from sqlalchemy import create_engine
     from sqlalchemy.engine import make_url
 
-    name = f"cardiosieve_test_{worker}"
+    # The run's id as well as the worker's: two suites on one server (two checkouts) never share.
+    run = os.environ.get("PYTEST_XDIST_TESTRUNUID", "")[:12]
+    name = f"cardiosieve_test_{run}_{worker}"
     server = create_engine(url, isolation_level="AUTOCOMMIT")
     with server.connect() as conn:
         conn.exec_driver_sql(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
         conn.exec_driver_sql(f'CREATE DATABASE "{name}"')
     server.dispose()
+    _made.update(server=url, name=name)
     os.environ["CARDIOSIEVE_TEST_PG_URL"] = make_url(url).set(database=name).render_as_string(hide_password=False)
+
+
+_made: dict[str, str] = {}
+
+
+def pytest_sessionfinish(session, exitstatus):
+    """Drop the worker's database at the end of its session."""
+    if not _made:
+        return
+    from sqlalchemy import create_engine
+
+    server = create_engine(_made["server"], isolation_level="AUTOCOMMIT")
+    with server.connect() as conn:
+        conn.exec_driver_sql(f'DROP DATABASE IF EXISTS "{_made["name"]}" WITH (FORCE)')
+    server.dispose()
 
 
 _worker_database()
