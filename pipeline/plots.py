@@ -251,8 +251,13 @@ def svg_st(data: pd.DataFrame, depression: dict | None = None) -> str:
     for i in _group_breaks(data):
         ax.axvline(i - 0.5, color="#999999", linewidth=0.6)
     ax.set_ylabel("ST at J (uV)")
-    ax.legend(fontsize=7, loc="best")
+    _legend(ax, fontsize=7, loc="best")
     return _svg(fig)
+
+
+def _legend(ax, **kw) -> None:
+    if ax.get_legend_handles_labels()[0]:      # matplotlib warns about an empty legend
+        ax.legend(**kw)
 
 
 def _first_of_group(data: pd.DataFrame) -> list[str]:
@@ -279,7 +284,7 @@ def svg_labs(data: pd.DataFrame, bands: list[dict]) -> str:
             for band, style in zip(bands, ("dotted", "dashed", "solid")):
                 ax.axhline(float(band["value"]), color="#b00020", linestyle=style, linewidth=1,
                            label=f"{band['key']} {band['op']} {band['value']}")
-            ax.legend(fontsize=6, loc="lower left")
+            _legend(ax, fontsize=6, loc="lower left")
         ax.axvline(0, color="#1f4e99", linewidth=0.8)
         ax.set_xlim(-LAB_WINDOW_H, LAB_WINDOW_H)
         ax.set_title(f"{name} (mmol/L)", fontsize=8)
@@ -306,9 +311,11 @@ def svg_qtc(data: pd.DataFrame, limits: dict) -> str:
     if limits.get("high_risk"):
         hr = limits["high_risk"]
         ax.axhline(float(hr["value"]), color="#b00020", linestyle="solid", label=f"{hr['key']} {hr['op']} {hr['value']} ms")
+    if not len(data):
+        ax.text(0.5, 0.5, "no QTc known for this patient's ECGs: unknown", transform=ax.transAxes, ha="center", fontsize=8)
     ax.set_ylabel("QTc (ms)")
     ax.tick_params(labelsize=7)
-    ax.legend(fontsize=7, loc="best")
+    _legend(ax, fontsize=7, loc="best")
     fig.autofmt_xdate()
     return _svg(fig)
 
