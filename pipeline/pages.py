@@ -339,7 +339,8 @@ def item_plots(data: ReviewData, item, evidence: dict) -> list[dict]:
     tz = data.tz
     aligned = data.aligned_row(item["ecg_id"])
     values = evidence.get("values", {}) or {}
-    prior_id = (aligned or {}).get("prior_ecg_id") or values.get("prior_ecg_id")
+    prior_id = _str((aligned or {}).get("prior_ecg_id"))
+    prior_id = prior_id if prior_id != UNKNOWN else (values.get("prior_ecg_id") or None)
     prior_at = (aligned or {}).get("prior_acquired_at")
     prior_at = None if prior_at is None or pd.isna(prior_at) else pd.Timestamp(prior_at)
     no_night = "unknown: this ECG is not in OUT's published aligned.parquet (a later night replaced it)"
@@ -349,8 +350,8 @@ def item_plots(data: ReviewData, item, evidence: dict) -> list[dict]:
         notes = []
         prior_st = data.lake_prior_st(prior_id, prior_at)
         if prior_st is None:
-            notes.append("Prior ECG's ST per lead: unknown " + ("(no prior ECG)" if not prior_id else
-                         "(start the page with --lake to read the prior ECG's leads)"))
+            notes.append("Prior ECG's ST per lead: " + ("none: no prior ECG within the window" if not prior_id else
+                         "unknown (start the page with --lake to read the prior ECG's leads)"))
         elif not prior_st:
             notes.append("Prior ECG's ST per lead: unknown (the lake has no lead values for it)")
         d = plots.st_plot_data(evidence, prior_st)

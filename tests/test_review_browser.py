@@ -2,6 +2,8 @@
 driven by Playwright; no browser is downloaded) against uvicorn serving the sample lake's night
 2026-11-29, as `make demo` runs it. Screenshots of the worklist and of one item of each screen
 are written under the test's temporary folder (docs/img/ holds copies for the README)."""
+import io
+import json
 import socket
 import threading
 import time
@@ -74,7 +76,8 @@ def test_filter_to_tier_1_open_an_st_item_and_record_a_review(night, server, pag
     assert tiers and set(tiers) == {"1"}
     page.screenshot(path=str(tmp_path / "worklist.png"))
 
-    st_row = page.locator("#worklist tbody tr[data-screen='st_deviation']").first
+    # An ST-elevation item: its plot draws the elevation cut points the screen applied.
+    st_row = page.locator("#worklist tbody tr[data-screen='st_deviation']").filter(has_text="ST elevation up to").first
     item_id = st_row.locator("a").inner_text()
     st_row.locator("a").click()
     page.wait_for_url(f"**/item/{item_id}")
@@ -83,15 +86,18 @@ def test_filter_to_tier_1_open_an_st_item_and_record_a_review(night, server, pag
     assert plot.is_visible() and plot.evaluate("img => img.naturalWidth > 0")       # the SVG was drawn
     # The cut points in the plot's table are the evidence's rules, shown in the criteria table.
     stored = read_items(open_store(sqlite_url(night)), item_ids=[item_id]).iloc[0]
-    import json
     rules = {r["key"]: r for r in json.loads(stored["evidence"])["rules"]}
     criteria = page.locator("#criteria").inner_text()
     for key, rule in rules.items():
         assert key in criteria and rule["source"] in criteria
-    table = page.locator("#plot-st table").inner_text()
     cut_keys = [k for k in rules if k.startswith("ste_") and k not in ("ste_clear_ratio", "ste_clear_leads")]
-    for key in cut_keys:
-        assert key in table
+    assert cut_keys
+    cells = page.locator("#plot-st table tbody tr").evaluate_all(
+        "rows => rows.map(r => Array.from(r.cells).map(c => c.innerText))")
+    drawn = {lead: (cut, key) for _, lead, _, _, cut, key, _, _ in cells}
+    cut_points = json.loads(stored["evidence"])["values"]["cut_points_uv"]
+    assert cut_points and all(drawn[lead] == (f"{value:.0f}", drawn[lead][1]) for lead, value in cut_points.items())
+    assert {drawn[lead][1] for lead in cut_points} <= set(cut_keys)
     page.screenshot(path=str(tmp_path / "item_st_deviation.png"), full_page=True)
 
     page.check("#o-finding_real")
@@ -106,7 +112,7 @@ def test_filter_to_tier_1_open_an_st_item_and_record_a_review(night, server, pag
     assert list(reviews["outcome"]) == ["finding_real"] and list(reviews["recorded_via"]) == ["web"]
     capsys.readouterr()
     assert main(["yield", "--out", str(night), "--format", "csv"]) == 0
-    yields = pd.read_csv(__import__("io").StringIO(capsys.readouterr().out))
+    yields = pd.read_csv(io.StringIO(capsys.readouterr().out))
     row = yields[(yields["screen"] == "st_deviation") & (yields["tier"] == 1)].iloc[0]
     assert row["reviewed"] >= 1 and row["finding_real"] >= 1
 
@@ -116,7 +122,10 @@ def test_screenshots_of_the_worklist_and_an_item_of_each_screen(night, server, p
     page.screenshot(path=str(tmp_path / "worklist_all.png"))
     items = read_items(open_store(sqlite_url(night)))
     for screen in ("hyperkalemia", "long_qt", "st_deviation"):
-        item_id = items[items["screen"] == screen]["item_id"].iloc[0]
+        of_screen = items[items["screen"] == screen]
+        if screen == "st_deviation":     # one with elevation cut points to draw
+            of_screen = of_screen[of_screen["summary"].str.startswith("ST elevation")]
+        item_id = of_screen["item_id"].iloc[0]
         page.goto(f"{server}/item/{item_id}")
         assert page.locator("#plot-labs img").is_visible() and page.locator("#plot-qtc img").is_visible()
         assert "Traceback" not in page.content()

@@ -103,6 +103,7 @@ def test_the_item_page_gives_criteria_thresholds_sources_caveats_and_plots(out):
     # The ST plot's table: V2 against the women's cut point that the evidence names.
     assert re.search(r"<td>septal</td><td>V2</td><td>300</td><td>unknown</td><td>150</td><td>ste_v2v3_women</td>", r.text)
     assert "start the page with --lake" in r.text                      # what could not be drawn, said plainly
+    assert "Prior ECG's ST per lead: none: no prior ECG within the window" in r.text.replace("&#39;", "'")
     assert CSRF_COOKIE in r.headers["set-cookie"] and "samesite=strict" in r.headers["set-cookie"].lower()
 
 
