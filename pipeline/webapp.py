@@ -190,10 +190,25 @@ def create_app(data: pages.ReviewData, *, tokens: CsrfTokens | None = None):
             return html(pages.message_page("Not allowed", "That action is not allowed here."), 405)
         return html(pages.message_page("Request not understood", "The request could not be handled."), exc.status_code)
 
-    async def server_error(request, exc):
+    def internal_error(exc: BaseException) -> HTMLResponse:
         log.error("review page: internal error (%s)", type(exc).__name__)
         return html(pages.message_page("Something went wrong", "The page could not be shown. Nothing was recorded "
                                        "unless the item's review history shows it."), 500)
+
+    async def server_error(request, exc):
+        return internal_error(exc)
+
+    def guarded(endpoint):
+        """Catch what a route raises here, so that neither Starlette nor uvicorn logs a traceback
+        (an exception's text may quote a value): the log gets the exception's type only."""
+        async def run(request):
+            try:
+                return await endpoint(request)
+            except HTTPException:
+                raise
+            except Exception as exc:
+                return internal_error(exc)
+        return run
 
     class SecurityHeaders(BaseHTTPMiddleware):
         async def dispatch(self, request, call_next):
@@ -202,9 +217,9 @@ def create_app(data: pages.ReviewData, *, tokens: CsrfTokens | None = None):
                 response.headers.setdefault(k, v)
             return response
 
-    return Starlette(routes=[Route("/", worklist), Route("/style.css", style), Route("/favicon.ico", no_icon),
-                             Route("/item/{item_id}", item, methods=["GET"]),
-                             Route("/item/{item_id}/review", review, methods=["POST"])],
+    return Starlette(routes=[Route("/", guarded(worklist)), Route("/style.css", style), Route("/favicon.ico", no_icon),
+                             Route("/item/{item_id}", guarded(item), methods=["GET"]),
+                             Route("/item/{item_id}/review", guarded(review), methods=["POST"])],
                      middleware=[Middleware(SecurityHeaders)],
                      exception_handlers={HTTPException: http_error, Exception: server_error})
 

@@ -206,6 +206,18 @@ def test_no_item_or_patient_id_reaches_a_log_line(out, caplog):
         assert secret not in text
 
 
+def test_an_internal_error_is_a_plain_500_page_and_logs_only_its_type(out, monkeypatch, caplog):
+    def broken(self, ecg_id):
+        raise KeyError(f"column of {ecg_id}")           # a message quoting a value
+    monkeypatch.setattr(ReviewData, "aligned_row", broken)
+    qt = item_id(out, "pat-Bo")
+    with caplog.at_level(logging.DEBUG):
+        r = TestClient(create_app(ReviewData(sqlite_url(out), out)), raise_server_exceptions=True).get(f"/item/{qt}")
+    assert r.status_code == 500 and "Something went wrong" in r.text and "e-qt" not in r.text
+    text = "\n".join(rec.getMessage() for rec in caplog.records if not rec.name.startswith("httpx"))
+    assert "internal error (KeyError)" in text and "e-qt" not in text and all(rec.exc_info is None for rec in caplog.records)
+
+
 def test_serve_without_a_store_is_exit_2(tmp_path, capsys):
     assert main(["serve", "--out", str(tmp_path)]) == 2
     assert "no worklist database" in capsys.readouterr().err
