@@ -27,6 +27,7 @@ from cardiosieve.pipeline import CAUTION
 TIER_WORDS = {1: "most urgent", 2: "urgent", 3: "soon", 4: "routine"}
 UNKNOWN = "unknown"
 APP_NAME = "cardiosieve review page"
+QTC_HISTORY_DAYS = 90     # the patient's ECGs the QTc plot reads from the lake (local choice)
 
 CSS = """
 body { font-family: system-ui, sans-serif; font-size: 17px; margin: 0 1.2rem 2rem; color: #111; background: #fff; }
@@ -260,6 +261,26 @@ class ReviewData:
                           window=(at - half, at + half + pd.Timedelta(seconds=1)),
                           keep={"patient_id": [patient_id]}).clean
 
+    def lake_qtc_rows(self, patient_id: str, ecg_at, sex, age_years):
+        """The long-QT screen's criterion rows (QTc, limit) for the patient's ECGs in the lake
+        from QTC_HISTORY_DAYS before this ECG to a day after it, computed by the screen itself
+        (screens.long_qt.criteria_long_qt under the site's rules) with this item's sex and age;
+        None without a lake. Column `origin` is "lake"."""
+        if not self.lake:
+            return None
+        import pandas as pd
+        from cardiosieve.pipeline import contract
+        from cardiosieve.pipeline.load import read_table
+        from cardiosieve.screens.long_qt import criteria_long_qt
+        at = pd.Timestamp(ecg_at)
+        ecgs = read_table(self.lake, contract.ECG, self.settings(), scope="review_page",
+                          window=(at - pd.Timedelta(days=QTC_HISTORY_DAYS), at + pd.Timedelta(days=1)),
+                          keep={"patient_id": [patient_id]}).clean
+        ecgs = ecgs[ecgs["patient_id"] == patient_id].assign(sex=sex if sex in ("F", "M") else None,
+                                                             age_years=float(age_years))
+        table = criteria_long_qt(ecgs.reset_index(drop=True), None, self.rules())
+        return table.assign(origin="lake")
+
     def lake_prior_st(self, prior_ecg_id, prior_at) -> dict | None:
         """The prior ECG's ST at J per lead from the lake's ecg_lead, or None without a lake."""
         if not self.lake or not prior_ecg_id or prior_at is None:
@@ -397,18 +418,35 @@ def item_plots(data: ReviewData, item, evidence: dict) -> list[dict]:
 
     q_ev = evidence if item["screen"] == "long_qt" else {}
     crit = data.criteria_rows("long_qt", item["patient_id"])
+    lake_qtc = None
+    try:
+        lake_qtc = data.lake_qtc_rows(item["patient_id"], item["ecg_at"], item["sex"], item["age_years"])
+    except Exception as exc:   # a lake that cannot be read: say so, keep the page
+        notes_qtc_error = f"The lake's ECGs could not be read ({type(exc).__name__})."
+    else:
+        notes_qtc_error = None
+    if lake_qtc is not None and len(lake_qtc):
+        have = set(crit["ecg_id"]) if crit is not None else set()
+        extra = lake_qtc[~lake_qtc["ecg_id"].isin(have)]
+        crit = extra if crit is None else pd.concat([crit.assign(origin="criteria"), extra], ignore_index=True)
     qd, limits = plots.qtc_plot_data(q_ev, item["ecg_id"], crit, prior_id, prior_at)
-    notes = ["QTc of this patient's ECGs in OUT's published night (criteria_long_qt.parquet)"
-             + (" and the prior ECG's from the evidence" if (qd["origin"] == "evidence").any() else "")
-             + "; earlier ECGs' QTc: unknown here."]
+    if lake_qtc is not None:
+        notes = [f"QTc of this patient's ECGs over the {QTC_HISTORY_DAYS} days before this ECG, as the long-QT "
+                 f"screen computes it (the night's from criteria_long_qt.parquet, earlier ones from the lake)."]
+    else:
+        notes = ["QTc of this patient's ECGs in OUT's published night (criteria_long_qt.parquet)"
+                 + (" and the prior ECG's from the evidence" if (qd["origin"] == "evidence").any() else "")
+                 + "; earlier ECGs' QTc: unknown here (start the page with --lake for them)."]
+    if notes_qtc_error:
+        notes.append(notes_qtc_error)
     if limits["limit_ms"] != limits["limit_ms"]:
         notes.append("Sex-specific limit applied: unknown (not in the published tables for this ECG).")
     out.append({"id": "qtc", "title": "QTc over the patient's ECGs, with the sex-specific limit applied",
                 "svg": _b64(plots.svg_qtc(qd, limits)), "alt": "QTc per ECG over time; the numbers are in the table below.",
-                "notes": notes, "header": ["ECG", "time", "QTc (ms)", "this ECG"],
-                "rows": [[r.ecg_id, _local(r.acquired_at, tz), _fmt(r.qtc_ms), "yes" if r.this_ecg else "no"]
+                "notes": notes, "header": ["ECG", "time", "QTc (ms)", "this ECG", "from"],
+                "rows": [[r.ecg_id, _local(r.acquired_at, tz), _fmt(r.qtc_ms), "yes" if r.this_ecg else "no", r.origin]
                          for r in qd.itertuples()]
-                + ([["limit applied", "", _fmt(limits["limit_ms"]), ""]])})
+                + ([["limit applied", "", _fmt(limits["limit_ms"]), "", ""]])})
 
     idata = plots.interval_plot_data(aligned)
     out.append({"id": "intervals", "title": "Heart rate, PR and QRS against the prior ECG",

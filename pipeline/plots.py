@@ -171,7 +171,8 @@ QTC_COLUMNS = ["ecg_id", "acquired_at", "qtc_ms", "this_ecg", "origin"]
 def qtc_plot_data(evidence: dict, ecg_id: str, criteria_rows: pd.DataFrame | None,
                   prior_ecg_id=None, prior_at=None) -> tuple[pd.DataFrame, dict]:
     """(points, limits). Points: the QTc the long-QT screen computed for each of the patient's
-    ECGs in OUT's criteria_long_qt table (origin "criteria"), and the prior ECG's QTc from the
+    ECGs in `criteria_rows` (its criterion table's rows: OUT's criteria_long_qt, origin
+    "criteria", or the screen run on the lake's ECGs, their `origin` column "lake"), and the prior ECG's QTc from the
     item's evidence when the table lacks it (origin "evidence"). Limits: `limit_ms` the
     sex-specific limit applied to this ECG (evidence values.qtc_limit_ms, the long-QT screen's
     own evidence; else its rule from the long-QT criteria row) and `high_risk` the
@@ -181,7 +182,7 @@ def qtc_plot_data(evidence: dict, ecg_id: str, criteria_rows: pd.DataFrame | Non
     if criteria_rows is not None and len(criteria_rows):
         for r in criteria_rows.itertuples():
             rows.append({"ecg_id": r.ecg_id, "acquired_at": pd.Timestamp(r.acquired_at), "qtc_ms": _num(r.qtc_ms),
-                         "this_ecg": r.ecg_id == ecg_id, "origin": "criteria"})
+                         "this_ecg": r.ecg_id == ecg_id, "origin": getattr(r, "origin", "criteria")})
     have = {r["ecg_id"] for r in rows}
     prior_qtc = _num(values.get("prior_qtc_ms"))
     if prior_ecg_id and prior_ecg_id not in have and not math.isnan(prior_qtc) and prior_at is not None:

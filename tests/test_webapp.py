@@ -18,6 +18,7 @@ from cardiosieve.pipeline.webapp import CSRF_COOKIE, CsrfTokens, create_app
 from cardiosieve.pipeline.worklist import build_items
 from cardiosieve.screens import FINDING_COLUMNS
 from cardiosieve.screens.st_deviation import screen_st_deviation
+from tests.lake_builders import ecg_row, lab_row, patient_row, write_lake
 from tests.screens.screen_builders import ecg_rows, lead_rows
 
 NIGHT = pd.Timestamp("2026-11-30 02:00", tz="UTC")
@@ -105,6 +106,25 @@ def test_the_item_page_gives_criteria_thresholds_sources_caveats_and_plots(out):
     assert "start the page with --lake" in r.text                      # what could not be drawn, said plainly
     assert "Prior ECG's ST per lead: none: no prior ECG within the window" in r.text.replace("&#39;", "'")
     assert CSRF_COOKIE in r.headers["set-cookie"] and "samesite=strict" in r.headers["set-cookie"].lower()
+
+
+def test_with_a_lake_the_item_page_draws_the_72_hours_of_results_and_earlier_ecgs_qtc(out, tmp_path):
+    lake = write_lake(tmp_path / "lake",
+                      ecg=[ecg_row("e-old", "pat-Bo", "2026-11-20T08:00:00Z", qt_ms=450.0),
+                           ecg_row("e-qt", "pat-Bo", "2026-11-29T11:00:00Z", qt_ms=532.0)],
+                      labs=[lab_row("r-near", "pat-Bo", "2026-11-29T10:00:00Z", value=3.1),
+                            lab_row("r-far", "pat-Bo", "2026-11-27T10:00:00Z", value=5.8),
+                            lab_row("r-other", "pat-Cy", "2026-11-29T10:00:00Z", value=6.9)],
+                      patients=[patient_row("pat-Bo")])
+    data = ReviewData(sqlite_url(out), out, lake=str(lake))
+    text = TestClient(create_app(data)).get(f"/item/{item_id(out, 'pat-Bo')}").text
+    labs = text.split('id="plot-labs"', 1)[1].split("</figure>", 1)[0]
+    assert "<td>potassium</td><td>-1.0</td><td>3.10</td><td>mmol/L</td><td>no</td><td>lake</td>" in labs
+    assert "5.80" not in labs and "6.90" not in labs          # outside the 72 h; another patient
+    qtc = text.split('id="plot-qtc"', 1)[1].split("</figure>", 1)[0]
+    # e-old's QTc as the long-QT screen computes it (Fridericia at RR 1000 ms leaves QT unchanged).
+    assert "<td>e-old</td><td>2026-11-20 08:00 +00:00</td><td>450</td><td>no</td><td>lake</td>" in qtc
+    assert "<td>e-qt</td>" in qtc and "over the 90 days before this ECG" in qtc
 
 
 def test_every_response_carries_the_security_headers(out):
