@@ -61,7 +61,12 @@ def page():
     with sync_playwright() as p:
         browser = p.chromium.launch(executable_path=str(CHROMIUM), args=["--no-sandbox"])
         context = browser.new_context(viewport={"width": 1280, "height": 900})
-        yield context.new_page()
+        pg = context.new_page()
+        errors = []     # a Content-Security-Policy violation or a failed load shows here
+        pg.on("console", lambda m: errors.append(m.text) if m.type == "error" else None)
+        pg.on("pageerror", lambda e: errors.append(str(e)))
+        yield pg
+        assert errors == []
         context.close()
         browser.close()
 
