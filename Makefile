@@ -23,6 +23,7 @@ demo: install
 		--start 2026-11-29T00:00:00Z --end 2026-11-30T00:00:00Z
 	@if $(BIN)/cardiosieve --help | grep -q " show "; then \
 		$(BIN)/cardiosieve show --out $(DEMO_OUT) --config sample_lake/site.toml --limit 8; fi
+	@echo "review page: $(BIN)/cardiosieve serve --out $(DEMO_OUT) --config sample_lake/site.toml --lake sample_lake"
 
 test: install
 	$(BIN)/python -m pytest

@@ -1,4 +1,4 @@
-"""Worklist sub-commands of the cardiosieve CLI: review, yield, export, show.
+"""Worklist sub-commands of the cardiosieve CLI: review, yield, export, show, serve.
 
 `register(subparsers)` adds them to the CLI's argparse sub-parsers; each sets `handler` (also as
 `func`), a function taking the parsed arguments and returning an exit code (pipeline.cli):
@@ -102,7 +102,28 @@ def register(subparsers) -> None:
     p.add_argument("--include-closed", action="store_true", help="also list items already reviewed")
     _add_time_zone_options(p)
     p.add_argument("--format", default="text", choices=FORMATS, help="text (default), json or csv")
+    p.add_argument("--html", metavar="FILE", help="write the worklist and each listed item's page (plots "
+                                                  "included) into one offline HTML file instead; needs --out "
+                                                  "(the night's aligned and criterion tables)")
+    p.add_argument("--lake", metavar="LAKE", help="with --html: the lake, for each patient's results over 72 h "
+                                                  "and the prior ECG's leads (read with --config)")
     p.set_defaults(handler=handle_show, func=handle_show)
+
+    p = subparsers.add_parser("serve", help="start the review page: the worklist and items in a browser",
+                              description="Start the review page (a small web application) over the worklist "
+                                          "store: the worklist with filters, each item with its criteria and "
+                                          "plots, and a form to record reviews. It has no login: it listens "
+                                          "on 127.0.0.1 unless --host says otherwise; put it behind the "
+                                          "site's authenticating proxy. Shows patient identifiers.")
+    p.add_argument("--out", required=True, metavar="OUT", help="output folder: its published night (aligned, "
+                                                               "criterion tables) and, without --db, its worklist.sqlite")
+    p.add_argument("--db", metavar="URL", help="SQLAlchemy URL of the worklist store (default: OUT/worklist.sqlite)")
+    p.add_argument("--host", default="127.0.0.1", help="address to listen on (default 127.0.0.1: this machine only)")
+    p.add_argument("--port", type=int, default=8750, help="port (default 8750)")
+    p.add_argument("--lake", metavar="LAKE", help="the lake, for each patient's results over 72 h and the prior "
+                                                  "ECG's leads (read with --config)")
+    _add_time_zone_options(p)
+    p.set_defaults(handler=handle_serve, func=handle_serve)
 
 
 def _add_time_zone_options(p: argparse.ArgumentParser) -> None:
@@ -271,6 +292,8 @@ def handle_show(args) -> int:
     if url is None:
         return EXIT_BAD_INPUT
     engine = _store(url)
+    if args.html:
+        return _show_html(args, url, tz)
     if args.item_id:
         return _show_one(engine, args, tz)
     stored = read_items(engine)
@@ -291,6 +314,44 @@ def handle_show(args) -> int:
     print(itemview.format_list(head, tz, _width()))
     print(f"{len(head)} of {len(matching)} matching items shown ({len(stored)} stored); times in {tz}; "
           f"`show ITEM_ID` gives one item in full")
+    return EXIT_OK
+
+
+def _show_html(args, url: str, tz: str) -> int:
+    """show --html FILE: the worklist and each listed item's page in one offline file (0600)."""
+    import pandas as pd
+    from cardiosieve.pipeline.files import write_atomic
+    from cardiosieve.pipeline.pages import ReviewData, snapshot_page
+
+    if not args.out:
+        return _fail("show --html: give --out OUT (its published night holds the data the plots draw)")
+    if args.item_id or (args.screen and len(args.screen) > 1) or (args.tier and len(args.tier) > 1) \
+            or (args.status and len(args.status) > 1):
+        return _fail("show --html: takes at most one --screen, --tier and --status, and no ITEM_ID")
+    data = ReviewData(url, args.out, lake=args.lake, config=args.config, timezone=tz)
+    filters = {"tier": args.tier[0] if args.tier else None, "screen": args.screen[0] if args.screen else None,
+               "status": args.status[0] if args.status else None, "location": args.location, "date": None}
+    made_at = pd.Timestamp.now(tz=tz).strftime("%Y-%m-%d %H:%M %z")
+    text, n = snapshot_page(data, filters, made_at, limit=max(args.limit, 0))
+    write_atomic(args.html, lambda tmp: tmp.write_text(text, encoding="utf-8"))
+    print(f"wrote {n} items to {args.html}", file=sys.stderr)
+    return EXIT_OK
+
+
+def handle_serve(args) -> int:
+    from cardiosieve.pipeline.pages import ReviewData
+    from cardiosieve.pipeline.store import sqlite_url
+    from cardiosieve.pipeline.webapp import serve
+
+    if not Path(args.out).is_dir():
+        return _fail(f"serve: no output folder {args.out}")
+    if not (0 <= args.port <= 65535):
+        return _fail(f"serve: --port {args.port} is not a port number")
+    url = args.db or sqlite_url(args.out)
+    _store(url)             # a missing or unusable store is exit 2 now, not a page later
+    data = ReviewData(url, args.out, lake=args.lake, config=args.config, timezone=_time_zone(args))
+    print(f"cardiosieve review page on http://{args.host}:{args.port}/ (Ctrl-C stops it). {CAUTION}", file=sys.stderr)
+    serve(data, host=args.host, port=args.port)
     return EXIT_OK
 
 

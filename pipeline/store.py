@@ -175,7 +175,7 @@ review = Table(
     Column("reviewer_role", String(128), nullable=False),
     Column("outcome", String(16), nullable=False),
     Column("note", Text),
-    Column("recorded_via", String(16), nullable=False),   # "cli" or "csv"
+    Column("recorded_via", String(16), nullable=False),   # "cli", "csv" or "web"
     CheckConstraint(f"outcome IN ({_in_list(OUTCOMES)})", name="ck_review_outcome"),
     UniqueConstraint("item_id", "reviewed_at", "reviewer_role", name="uq_review_entry"),
     Index("ix_review_item", "item_id"),
@@ -721,9 +721,9 @@ def _check_reviews(conn: Connection, df: pd.DataFrame) -> pd.Series:
 
 
 def record_review(engine: Engine, item_id: str, outcome: str, role: str, note: str | None = None,
-                  reviewed_at=None) -> bool:
-    """Record one review outcome and close the item. reviewed_at: tz-aware (the CLI passes the
-    time of entry). Returns False when the same review (item, time, role) is already recorded.
+                  reviewed_at=None, recorded_via: str = "cli") -> bool:
+    """Record one review outcome and close the item. reviewed_at: tz-aware (the CLI and the
+    review page pass the time of entry); recorded_via: "cli" or "web" (the review page). Returns False when the same review (item, time, role) is already recorded.
     Raises ValueError for an unknown item or outcome, a missing role, or a review dated before
     the item was flagged."""
     outcome = normalise_outcome(outcome)
@@ -741,7 +741,7 @@ def record_review(engine: Engine, item_id: str, outcome: str, role: str, note: s
             raise ValueError(f"review rejected: {reason}")
         if _duplicates(conn, one).iloc[0]:
             return False
-        _apply_reviews(conn, one, "cli")
+        _apply_reviews(conn, one, recorded_via)
     return True
 
 

@@ -73,9 +73,10 @@ def test_show_help_lists_exactly_the_screens_statuses_and_tiers():
     assert commands.TIERS == tuple(range(TIER_MOST_URGENT, TIER_LEAST_URGENT + 1))
 
 
-def test_register_adds_the_four_sub_commands():
+def test_register_adds_the_five_sub_commands():
     for name in ("review", "yield", "export", "show"):
         assert callable(parser().parse_args([name, "--db", "sqlite://"]).handler)
+    assert callable(parser().parse_args(["serve", "--out", "OUT"]).handler)
 
 
 def test_show_prints_the_caution_and_the_ranked_head(out, capsys):
