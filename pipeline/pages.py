@@ -306,7 +306,9 @@ def _read_parquet(path: str, mtime_ns: int):
 def _row_view(r, tz: str, href: str) -> dict:
     from cardiosieve.pipeline import itemview
     from cardiosieve.pipeline.jsontext import loads_list
-    return {"rank": "-" if r.rank != r.rank else int(r.rank), "tier": int(r.tier), "tier_word": tier_word(r.tier),
+    import pandas as pd
+    # An explained or closed item has left the review queue and has no rank (store._rerank).
+    return {"rank": "-" if pd.isna(r.rank) else int(r.rank), "tier": int(r.tier), "tier_word": tier_word(r.tier),
             "screen": r.screen, "status": r.status, "patient_id": r.patient_id,
             "sex_age": itemview._sex_age(r.sex, r.age_years),
             "location": r.location if isinstance(r.location, str) else UNKNOWN,

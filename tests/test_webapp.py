@@ -151,6 +151,9 @@ def test_a_review_is_recorded_through_the_store_and_shown_in_the_history(out):
     assert read_items(open_store(sqlite_url(out)), item_ids=[qt])["status"].iloc[0] == "closed"
     page = c.get(r.headers["location"]).text
     assert "Review recorded." in page and "cardiology registrar" in page and "seen, team told" in page
+    assert "<td>-, closed (reviewed: finding_real)</td>" in page     # out of the queue: no rank
+    closed = c.get("/?status=closed").text.split("<tbody>", 1)[1]
+    assert "pat-Bo" in closed and '<td class="num">-</td>' in closed
 
 
 def test_a_bad_outcome_is_400_with_the_form_kept_and_nothing_recorded(out):
