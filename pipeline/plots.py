@@ -285,7 +285,8 @@ def svg_labs(data: pd.DataFrame, bands: list[dict]) -> str:
             for band, style in zip(bands, ("dotted", "dashed", "solid")):
                 ax.axhline(float(band["value"]), color="#b00020", linestyle=style, linewidth=1,
                            label=f"{band['key']} {band['op']} {band['value']}")
-            _legend(ax, fontsize=6, loc="lower left")
+            _legend(ax, fontsize=6, loc="best")
+        ax.margins(y=0.15)                 # a result on a band or at the edge stays visible
         ax.axvline(0, color="#1f4e99", linewidth=0.8)
         ax.set_xlim(-LAB_WINDOW_H, LAB_WINDOW_H)
         ax.set_title(f"{name} (mmol/L)", fontsize=8)
