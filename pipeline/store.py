@@ -179,11 +179,44 @@ review = Table(
     CheckConstraint(f"outcome IN ({_in_list(OUTCOMES)})", name="ck_review_outcome"),
     UniqueConstraint("item_id", "reviewed_at", "reviewer_role", name="uq_review_entry"),
     Index("ix_review_item", "item_id"),
+    # The item's rule version and tier when the review was recorded (schema 4): a later rerun
+    # may change the item, and yield by rule version must count what the reviewer saw.
+    Column("rule_version_at_review", String(64)),
+    Column("tier_at_review", Integer),
 )
+
+# Every finding of every run, as the run made it, with the item it folded into (schema 4).
+# Append-only: rows are inserted in the transaction of the night's upsert (upsert_items with
+# `findings`) and never updated or deleted. One row per (run_id, screen, ecg_id, rule_version):
+# a rerun of the same window under the same rules adds nothing, under changed rules (another
+# version string, a site override included) it adds its findings.
+finding_history = Table(
+    "finding_history", metadata,
+    Column("history_id", Integer, primary_key=True, autoincrement=True),
+    Column("run_id", String(128), nullable=False),
+    Column("run_end_at", UTCDateTime, nullable=False),
+    Column("item_id", String(40), ForeignKey("worklist_item.item_id"), nullable=False),
+    Column("screen", String(64), nullable=False),
+    Column("ecg_id", Text, nullable=False),
+    Column("patient_id", Text, nullable=False),
+    Column("acquired_at", UTCDateTime, nullable=False),
+    Column("tier", Integer, nullable=False),
+    Column("rule_version", String(64), nullable=False),
+    Column("summary", Text),
+    Column("evidence", Text),          # JSON
+    Column("caveats", Text),           # JSON list
+    Column("territories", Text),
+    Column("score_parts", Text),       # JSON object, with the care location the score used
+    CheckConstraint("tier BETWEEN 1 AND 4", name="ck_finding_history_tier"),
+    UniqueConstraint("run_id", "screen", "ecg_id", "rule_version", name="uq_finding_history_entry"),
+    Index("ix_finding_history_item", "item_id"),
+    Index("ix_finding_history_ecg", "ecg_id"),
+)
+HISTORY_COLUMNS = [c.name for c in finding_history.columns if c.name != "history_id"]
 
 # The schema's version. Each is one Alembic revision in pipeline/migrations/versions, its id the
 # version in four digits; a new one bumps this number (DEVELOPERS.md, "Changing the store's schema").
-SCHEMA_VERSION = 3
+SCHEMA_VERSION = 4
 HEAD_REVISION = f"{SCHEMA_VERSION:04d}"
 MIGRATIONS_DIR = Path(__file__).resolve().parent / "migrations"
 # Alembic's revision table. Not its default alembic_version: another application using Alembic
