@@ -603,7 +603,8 @@ def read_worklist(engine: Engine, run_ids) -> pd.DataFrame:
     return queue_order(normalise_items(_frame(rows, ITEM_COLUMNS)))
 
 
-REVIEW_COLUMNS = ["item_id", "reviewed_at", "reviewer_role", "outcome", "note", "recorded_via"]
+REVIEW_COLUMNS = ["item_id", "reviewed_at", "reviewer_role", "outcome", "note", "recorded_via",
+                  "rule_version_at_review", "tier_at_review"]
 
 
 def read_reviews(engine: Engine, item_ids) -> pd.DataFrame:
@@ -651,16 +652,26 @@ def _rerank(conn: Connection) -> None:
                  .values(rank=ordered.c.rn))
 
 
-def upsert_items(engine: Engine, items: pd.DataFrame) -> dict:
+def upsert_items(engine: Engine, items: pd.DataFrame, history: pd.DataFrame | None = None) -> dict:
     """Insert or update items on item_id, in one transaction, then re-rank the whole table.
 
     Rows whose content (COMPARED_COLUMNS) equals the stored row are left alone, so running the
     same window twice gives the identical table. A stored closed or explained item is not
     reopened unless the incoming one is more severe (worklist.apply_reopen_rule); then it reopens
-    with the reason. first_flagged_at is never overwritten. Returns counts:
-    inserted, updated, reopened, unchanged."""
+    with the reason, and a closed item that stays closed keeps the finding that was reviewed
+    (its rule_version included). first_flagged_at is never overwritten.
+
+    history: the run's findings as finding_history rows (worklist.history_rows), appended in the
+    same transaction, after the items they point to, so that a crash leaves both or neither. A
+    row already there (same run_id, screen, ecg_id, rule_version) is skipped, never rewritten.
+    Returns counts: inserted, updated, reopened, unchanged (items) and, with history, history
+    (finding_history rows added)."""
     counts = {"inserted": 0, "updated": 0, "reopened": 0, "unchanged": 0}
+    if history is not None:
+        counts["history"] = 0
     if items.empty:
+        if history is not None and len(history):
+            raise ValueError("finding_history: rows given without the items they fold into")
         return counts
     incoming = normalise_items(items)
     if incoming["item_id"].duplicated().any():
@@ -690,7 +701,33 @@ def upsert_items(engine: Engine, items: pd.DataFrame) -> dict:
             for i in range(0, len(rows), CHUNK):
                 conn.execute(stmt, rows[i:i + CHUNK])
             _rerank(conn)
+        if history is not None and len(history):
+            counts["history"] = _append_history(conn, engine.dialect.name, history)
     return counts
+
+
+def _append_history(conn: Connection, dialect: str, history: pd.DataFrame) -> int:
+    """Insert finding_history rows, skipping those already stored (uq_finding_history_entry);
+    returns the rows added. The message of a bad batch names columns and counts only."""
+    h = finding_history
+    missing = [c for c in HISTORY_COLUMNS if c not in history.columns]
+    if missing:
+        raise ValueError(f"finding_history: rows lack columns: {', '.join(missing)}")
+    unnamed = int(history["rule_version"].isna().sum())
+    if unnamed:
+        raise ValueError(f"finding_history: {unnamed} row(s) without rule_version")
+    run_ids = sorted(set(history["run_id"].astype(str)))
+
+    def stored() -> int:
+        return conn.execute(select(func.count()).select_from(h).where(h.c.run_id.in_(run_ids))).scalar()
+
+    before = stored()
+    make = {"postgresql": postgresql.insert, "sqlite": sqlite.insert}[dialect]
+    stmt = make(h).on_conflict_do_nothing(index_elements=[h.c.run_id, h.c.screen, h.c.ecg_id, h.c.rule_version])
+    rows = _records(history[HISTORY_COLUMNS])
+    for i in range(0, len(rows), CHUNK):
+        conn.execute(stmt, rows[i:i + CHUNK])
+    return stored() - before
 
 
 # ---------------------------------------------------------------------------------------------
@@ -707,16 +744,21 @@ def _apply_reviews(conn: Connection, new: pd.DataFrame, recorded_via: str) -> in
     """Insert review rows and close their items: an item is closed by its latest review, unless
     it was reopened after that review was made. Returns rows inserted."""
     t, r = worklist_item, review
-    rows = _records(new[["item_id", "reviewed_at", "reviewer_role", "outcome", "note"]].assign(recorded_via=recorded_via))
-    conn.execute(insert(r), rows)
     ids = sorted(new["item_id"].unique())
+    items = _frame(conn.execute(select(t.c.item_id, t.c.status, t.c.last_updated_at, t.c.rule_version, t.c.tier)
+                                .where(t.c.item_id.in_(ids)).with_for_update()).all(),
+                   ["item_id", "status", "last_updated_at", "rule_version", "tier"])
+    # What the reviewer saw: the item's rule version and tier as stored when the review is recorded.
+    seen = items.set_index("item_id")
+    rows = _records(new[["item_id", "reviewed_at", "reviewer_role", "outcome", "note"]].assign(
+        recorded_via=recorded_via, rule_version_at_review=new["item_id"].map(seen["rule_version"]),
+        tier_at_review=new["item_id"].map(seen["tier"])))
+    conn.execute(insert(r), rows)
     latest = _frame(conn.execute(
         select(r.c.item_id, r.c.reviewed_at, r.c.outcome, r.c.review_id).where(r.c.item_id.in_(ids))).all(),
         ["item_id", "reviewed_at", "outcome", "review_id"])
     latest = latest.sort_values(["item_id", "reviewed_at", "review_id"]).drop_duplicates("item_id", keep="last")
-    items = _frame(conn.execute(select(t.c.item_id, t.c.status, t.c.last_updated_at)
-                                .where(t.c.item_id.in_(ids)).with_for_update()).all(),
-                   ["item_id", "status", "last_updated_at"])
+    items = items[["item_id", "status", "last_updated_at"]]
     m = latest.merge(items, on="item_id")
     close = ~(m["status"].eq(STATUS_REOPENED) & (m["reviewed_at"] < m["last_updated_at"]))
     m = m[close]

@@ -1,0 +1,197 @@
+"""The history the quality audit will stand on: every run's findings kept in finding_history
+(append-only, in the upsert's transaction, idempotent per run, screen, ECG and rule version),
+reviews that record the item's rule version and tier when they were made, closed items that
+keep the finding that was reviewed, and first_flagged_at in a backfill (the ECG's time).
+
+SQLite always; PostgreSQL when CARDIOSIEVE_TEST_PG_URL is set (see tests/test_store.py)."""
+import json
+
+import pandas as pd
+import pytest
+from sqlalchemy import func, select
+
+from cardiosieve.pipeline import store
+from cardiosieve.pipeline.store import (finding_history, import_reviews_csv, open_store, read_items, record_review,
+                                        review, upsert_items, worklist_item)
+from cardiosieve.pipeline.worklist import STATUS_CLOSED, build_items, fold_findings, history_rows
+from tests.lake_builders import ecg_row, lab_row, patient_row, write_lake
+from tests.test_store import NIGHT1, NIGHT2, engine, finding, findings, sqlite_engine  # noqa: F401 (fixtures)
+
+
+def night_with_history(engine, rows, now=NIGHT1, run_id="run-1", backfill=False):
+    """What stage_worklist does: fold the findings, build the items, upsert both in one go."""
+    f = findings(*rows)
+    existing = read_items(engine, patient_ids=f["patient_id"].unique())
+    folded = fold_findings(f, None, existing)
+    items = build_items(f, None, existing, run_id, now, backfill=backfill, folded=folded)
+    return items, upsert_items(engine, items, history=history_rows(folded, run_id, now))
+
+
+def history(engine) -> pd.DataFrame:
+    with engine.connect() as conn:
+        rows = conn.execute(finding_history.select().order_by(finding_history.c.history_id)).mappings().all()
+    return pd.DataFrame(rows, columns=[c.name for c in finding_history.columns])
+
+
+def with_version(row: dict, version: str) -> dict:
+    """A finding as a rerun under other rules makes it: same ECG, another rule version."""
+    return {**row, "rule_version": version}
+
+
+NIGHT = [finding("e1", "p1", "2026-03-01 10:00", tier=1, severity=0.7),
+         finding("e2", "p1", "2026-03-01 12:00", tier=2, severity=0.4),   # same episode as e1
+         finding("e3", "p2", "2026-03-01 11:00", screen="long_qt", tier=3, severity=0.2)]
+
+
+# --- finding_history --------------------------------------------------------------------------
+def test_every_finding_of_a_run_is_kept_with_the_item_it_folded_into(engine):
+    items, counts = night_with_history(engine, NIGHT)
+    assert counts["history"] == 3 and counts["inserted"] == 2   # e1 and e2 fold into one item
+    h = history(engine).set_index("ecg_id")
+    item_of = read_items(engine).set_index("ecg_id")["item_id"]
+    assert h.loc["e1", "item_id"] == h.loc["e2", "item_id"] == item_of["e1"]
+    assert h.loc["e3", "item_id"] == item_of["e3"]
+    assert h["run_id"].eq("run-1").all() and h["run_end_at"].eq(NIGHT1).all()
+    # The folded finding as it was, not the item: e2 keeps its own tier and severity.
+    assert (h.loc["e2", "tier"], h.loc["e2", "screen"], h.loc["e2", "patient_id"]) == (2, "hyperkalemia", "p1")
+    assert h.loc["e2", "acquired_at"] == pd.Timestamp("2026-03-01 12:00", tz="UTC")
+    assert h.loc["e2", "rule_version"] == "hyperkalemia/1.0.0"
+    assert json.loads(h.loc["e2", "score_parts"])["severity"] == 0.4
+
+
+def test_rerunning_the_same_window_under_the_same_rules_adds_no_history(engine):
+    night_with_history(engine, NIGHT)
+    _, counts = night_with_history(engine, NIGHT)
+    assert counts["history"] == 0 and len(history(engine)) == 3
+
+
+def test_rerunning_the_same_window_under_changed_rules_adds_its_findings(engine):
+    night_with_history(engine, NIGHT)
+    _, counts = night_with_history(engine, [with_version(r, r["rule_version"] + "+site.0a1b2c3d") for r in NIGHT])
+    h = history(engine)
+    assert counts["history"] == 3 and len(h) == 6
+    assert h.groupby("ecg_id")["rule_version"].nunique().eq(2).all()
+
+
+def test_the_history_rolls_back_with_the_items(engine):
+    night_with_history(engine, NIGHT)
+    before_items, before_history = read_items(engine), history(engine)
+    f = findings(finding("e7", "p7"), finding("e8", "p8"))
+    folded = fold_findings(f, None, None)
+    items = build_items(f, None, None, "run-2", NIGHT2, folded=folded)
+    rows = history_rows(folded, "run-2", NIGHT2)
+    rows.loc[1, "tier"] = 9   # violates finding_history's tier check, after the items are written
+    with pytest.raises(Exception):
+        upsert_items(engine, items, history=rows)
+    pd.testing.assert_frame_equal(read_items(engine), before_items)
+    pd.testing.assert_frame_equal(history(engine), before_history)
+
+
+def test_history_rows_without_a_rule_version_are_refused_naming_the_column_not_the_row(sqlite_engine):
+    f = findings(finding("e1", "secret-patient"))
+    folded = fold_findings(f, None, None)
+    items = build_items(f, None, None, "run-1", NIGHT1, folded=folded)
+    rows = history_rows(folded, "run-1", NIGHT1).assign(rule_version=None)
+    with pytest.raises(ValueError, match=r"^finding_history: 1 row\(s\) without rule_version$"):
+        upsert_items(sqlite_engine, items, history=rows)
+    assert read_items(sqlite_engine).empty
+
+
+# --- reviews and closed items -------------------------------------------------------------------
+def test_a_review_records_the_items_rule_version_and_tier_then(engine, tmp_path):
+    items, _ = night_with_history(engine, NIGHT)
+    iid = items.set_index("ecg_id")["item_id"]
+    record_review(engine, iid["e1"], "finding_real", "registrar", None, NIGHT1 + pd.Timedelta(hours=3))
+    csv = tmp_path / "reviews.csv"
+    csv.write_text("item_id,reviewed_at,reviewer_role,outcome\n"
+                   f"{iid['e3']},2026-03-02T09:00:00Z,consultant,finding_not_real\n")
+    assert import_reviews_csv(engine, csv)["imported"] == 1
+    with engine.connect() as conn:
+        got = conn.execute(select(review.c.item_id, review.c.rule_version_at_review, review.c.tier_at_review,
+                                  review.c.recorded_via).order_by(review.c.review_id)).all()
+    assert [tuple(r) for r in got] == [(iid["e1"], "hyperkalemia/1.0.0", 1, "cli"),
+                                       (iid["e3"], "long_qt/1.0.0", 3, "csv")]
+
+
+def test_a_rerun_under_an_override_never_rewrites_a_closed_items_finding(engine):
+    items, _ = night_with_history(engine, NIGHT)
+    iid = items.set_index("ecg_id").loc["e1", "item_id"]
+    record_review(engine, iid, "finding_real", "registrar", None, NIGHT1 + pd.Timedelta(hours=3))
+    reviewed = read_items(engine).set_index("item_id").loc[iid]
+    # The same night again under a site override: e1 now comes out milder (tier 2, severity
+    # 0.3): not more severe, so the item stays closed, and keeps what the reviewer saw.
+    override = [with_version(finding("e1", "p1", "2026-03-01 10:00", tier=2, severity=0.3, summary="milder"),
+                             "hyperkalemia/1.0.0+site.0a1b2c3d"),
+                with_version(NIGHT[1], "hyperkalemia/1.0.0+site.0a1b2c3d")]
+    _, counts = night_with_history(engine, override, now=NIGHT2, run_id="run-2")
+    row = read_items(engine).set_index("item_id").loc[iid]
+    assert counts["reopened"] == 0 and row["status"] == STATUS_CLOSED
+    for c in ("rule_version", "tier", "ecg_id", "summary", "evidence", "score_parts"):
+        assert row[c] == reviewed[c], c
+    assert row["rule_version"] == "hyperkalemia/1.0.0" and row["tier"] == 1
+    assert json.loads(row["other_ecg_ids"]) == ["e2"]
+    # The override's findings are in the history, beside the first run's.
+    h = history(engine)
+    new = h[h["run_id"].eq("run-2")].set_index("ecg_id")
+    assert sorted(new.index) == ["e1", "e2"] and new["item_id"].eq(iid).all()
+    assert (new.loc["e1", "rule_version"], new.loc["e1", "tier"]) == ("hyperkalemia/1.0.0+site.0a1b2c3d", 2)
+    with engine.connect() as conn:
+        at_review = conn.execute(select(review.c.rule_version_at_review, review.c.tier_at_review)).one()
+    assert tuple(at_review) == ("hyperkalemia/1.0.0", 1)
+
+
+def test_a_more_severe_finding_under_an_override_still_reopens_with_its_own_rule_version(engine):
+    items, _ = night_with_history(engine, NIGHT)
+    iid = items.set_index("ecg_id").loc["e1", "item_id"]   # e1 and e2's item: tier 1, severity 0.7
+    record_review(engine, iid, "finding_not_real", "registrar", None, NIGHT1 + pd.Timedelta(hours=3))
+    worse = with_version(finding("e1", "p1", "2026-03-01 10:00", tier=1, severity=0.9), "hyperkalemia/2.0.0")
+    _, counts = night_with_history(engine, [worse], now=NIGHT2, run_id="run-2")
+    row = read_items(engine).set_index("item_id").loc[iid]
+    assert counts["reopened"] == 1 and row["status"] == "reopened" and row["rule_version"] == "hyperkalemia/2.0.0"
+
+
+# --- first_flagged_at: a night against a backfill -------------------------------------------------
+def test_build_items_in_a_backfill_flags_new_items_at_their_first_ecgs_time():
+    f = findings(*NIGHT)
+    night_items = build_items(f, None, None, "run-1", NIGHT1).set_index("ecg_id")
+    back = build_items(f, None, None, "run-1", NIGHT1, backfill=True).set_index("ecg_id")
+    assert night_items["first_flagged_at"].eq(NIGHT1).all()
+    # e1's item (e1 10:00 and e2 12:00) was first visible with e1; e3's with e3.
+    assert back.loc["e1", "first_flagged_at"] == pd.Timestamp("2026-03-01 10:00", tz="UTC")
+    assert back.loc["e3", "first_flagged_at"] == pd.Timestamp("2026-03-01 11:00", tz="UTC")
+
+
+LONG_QT_AT = ["2026-11-02T09:30:00Z", "2026-11-05T14:15:00Z", "2026-11-09T22:45:00Z"]
+
+
+def long_qt_lake(lake):
+    """Three patients, each with one ECG of QT 520 ms at RR 1000 ms (QTc 520 ms: above the
+    female limit of 460 ms), on three different days."""
+    ecg = [ecg_row(f"E{i}", f"P{i}", at, qt_ms=520.0) for i, at in enumerate(LONG_QT_AT)]
+    labs = [lab_row(f"R{i}", f"P{i}", at) for i, at in enumerate(LONG_QT_AT)]
+    return write_lake(lake, ecg=ecg, labs=labs, patients=[patient_row(f"P{i}") for i in range(3)])
+
+
+def stored_first_flagged(out) -> pd.Series:
+    engine = open_store(store.sqlite_url(out), create=False)
+    try:
+        items = read_items(engine, screens=["long_qt"])
+    finally:
+        engine.dispose()
+    return items.set_index("ecg_id")["first_flagged_at"].sort_index()
+
+
+def test_a_multi_chunk_backfill_flags_items_at_their_ecgs_time_and_a_night_at_its_end(tmp_path):
+    from cardiosieve.pipeline.run import run_interval
+
+    lake = long_qt_lake(tmp_path / "lake")
+    back = tmp_path / "backfill"
+    summary = run_interval(str(lake), str(back), "2026-11-01T00:00:00Z", "2026-11-11T00:00:00Z",
+                           quality=False, chunk_days=3)
+    assert summary["chunks"] == 4          # [1, 4), [4, 7), [7, 10), [10, 11) November
+    got = stored_first_flagged(back)
+    assert got.to_dict() == {f"E{i}": pd.Timestamp(at) for i, at in enumerate(LONG_QT_AT)}
+
+    nightly = tmp_path / "night"
+    run_interval(str(lake), str(nightly), "2026-11-05T00:00:00Z", "2026-11-06T00:00:00Z", quality=False)
+    assert stored_first_flagged(nightly).to_dict() == {"E1": pd.Timestamp("2026-11-06T00:00:00Z")}
