@@ -31,6 +31,9 @@ SCREEN_HELP = "hyperkalemia, long_qt, st_deviation"
 STATUS_HELP = "open, reopened, explained, closed"
 TIERS = (1, 2, 3, 4)
 FORMATS = ("text", "json", "csv")
+YIELD_FORMATS = ("table", "text", "json", "csv")   # text: the name of table before, still taken
+# Kept in step with pipeline.store.YIELD_GROUPS (tests/test_history.py checks it).
+YIELD_GROUPS = ("tier", "rule_version")
 TEXT_WIDTH = (60, 110)       # text output wraps at the terminal's width, within these bounds
 
 
@@ -67,11 +70,16 @@ def register(subparsers) -> None:
     p.set_defaults(handler=handle_review, func=handle_review)
 
     p = subparsers.add_parser("yield", help="per screen and tier: items, reviewed, finding_real, PPV (95 %% Wilson)",
-                              description="Review yield per screen and tier, for tuning thresholds. "
-                                          "PPV = (finding_real + already_known) / reviewed.")
+                              description="Review yield per screen and tier (or rule version), for tuning "
+                                          "thresholds. PPV = (finding_real + already_known) / reviewed.")
     add_store_options(p)
     p.add_argument("--since", metavar="DATE", help="only items first flagged at or after DATE (UTC)")
-    p.add_argument("--format", default="text", choices=FORMATS, help="text (default), json or csv")
+    p.add_argument("--until", metavar="DATE", help="only items first flagged before DATE (UTC)")
+    p.add_argument("--by", default="tier", choices=YIELD_GROUPS,
+                   help="group each screen by tier (default) or by rule_version: the rule version an "
+                        "item was reviewed under (its current one while not reviewed)")
+    p.add_argument("--format", default="table", choices=YIELD_FORMATS,
+                   help="table (default; text is the same), json or csv")
     p.set_defaults(handler=handle_yield, func=handle_yield)
 
     p = subparsers.add_parser("export", help="write the stored worklist as CSV for spreadsheets")
@@ -186,7 +194,12 @@ def handle_yield(args) -> int:
     url = _url(args)
     if url is None:
         return EXIT_BAD_INPUT
-    table = yield_table(_store(url), since=args.since)
+    try:
+        table = yield_table(_store(url), since=args.since, until=args.until, by=args.by)
+    except BadInputError:
+        raise
+    except ValueError:                     # a date pandas cannot read
+        return _fail("yield: --since/--until: not a date (ISO 8601, e.g. 2026-03-01)")
     if args.format == "json":
         from cardiosieve.pipeline.jsontext import plain
         _print_json({"caution": CAUTION, "ppv": PPV_NOTE, "rows": plain(table.to_dict("records"))})
@@ -199,12 +212,13 @@ def handle_yield(args) -> int:
     def num(x, fmt):
         return "-" if x != x else format(x, fmt)   # NaN shows as "-"
     shown = pd.DataFrame({
-        "screen": table["screen"], "tier": table["tier"], "items": table["items"], "reviewed": table["reviewed"],
+        "screen": table["screen"], args.by: table[args.by], "items": table["items"], "reviewed": table["reviewed"],
         "finding_real": table["finding_real"], "already_known": table["already_known"],
         "ppv": [num(x, ".2f") for x in table["ppv"]],
         "ppv_95ci": ["-" if lo != lo else f"{lo:.2f}-{hi:.2f}" for lo, hi in zip(table["ppv_low"], table["ppv_high"])],
         "median_h_to_review": [num(x, ".1f") for x in table["median_hours_to_review"]]})
-    print(shown.to_string(index=False) if len(shown) else "no items flagged" + (f" since {args.since}" if args.since else ""))
+    window = (f" since {args.since}" if args.since else "") + (f" before {args.until}" if args.until else "")
+    print(shown.to_string(index=False) if len(shown) else "no items flagged" + window)
     print(PPV_NOTE)
     return EXIT_OK
 

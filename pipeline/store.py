@@ -924,34 +924,55 @@ def wilson_interval(k, n, confidence: float = WILSON_CONFIDENCE):
 YIELD_COLUMNS = ["screen", "tier", "items", "reviewed", OUTCOME_FINDING_REAL, OUTCOME_ALREADY_KNOWN,
                  OUTCOME_FINDING_NOT_REAL, OUTCOME_DATA_PROBLEM, "ppv", "ppv_low", "ppv_high",
                  "median_hours_to_review"]
+YIELD_GROUPS = ("tier", "rule_version")   # the second grouping of a yield table, after screen
 
 
-def yield_table(engine: Engine, since=None) -> pd.DataFrame:
-    """Per screen and tier: items flagged (first_flagged_at >= since), items reviewed, each item's
+def _utc_bound(value) -> dt.datetime:
+    when = pd.Timestamp(value)
+    when = when.tz_localize("UTC") if when.tzinfo is None else when.tz_convert("UTC")
+    return when.to_pydatetime()
+
+
+def yield_table(engine: Engine, since=None, until=None, by: str = "tier") -> pd.DataFrame:
+    """Per screen and tier (or rule version): items flagged in [since, until) (first_flagged_at;
+    either bound may be None; a date without a time is midnight UTC), items reviewed, each item's
     latest outcome counted, PPV = (finding_real + already_known) / reviewed with its 95 % Wilson
-    interval, and the median hours from first flag to first review."""
+    interval, and the median hours from first flag to first review.
+
+    by="tier": the item's tier as stored. by="rule_version": the rule version an item was
+    reviewed under (rule_version_at_review of its latest review, the one whose outcome counts),
+    and for an item not reviewed yet its current rule_version; a column `rule_version` then
+    stands where `tier` does."""
+    if by not in YIELD_GROUPS:
+        raise ValueError(f"yield: unknown grouping {by!r} (known: {', '.join(YIELD_GROUPS)})")
     t, r = worklist_item, review
-    q = select(t.c.item_id, t.c.screen, t.c.tier, t.c.first_flagged_at)
+    q = select(t.c.item_id, t.c.screen, t.c.tier, t.c.rule_version, t.c.first_flagged_at)
     if since is not None:
-        since = pd.Timestamp(since)
-        since = since.tz_localize("UTC") if since.tzinfo is None else since.tz_convert("UTC")
-        q = q.where(t.c.first_flagged_at >= since.to_pydatetime())
+        q = q.where(t.c.first_flagged_at >= _utc_bound(since))
+    if until is not None:
+        q = q.where(t.c.first_flagged_at < _utc_bound(until))
     with engine.connect() as conn:
-        items = _frame(conn.execute(q).all(), ["item_id", "screen", "tier", "first_flagged_at"])
-        reviews = _frame(conn.execute(select(r.c.item_id, r.c.reviewed_at, r.c.outcome, r.c.review_id)).all(),
-                         ["item_id", "reviewed_at", "outcome", "review_id"])
+        items = _frame(conn.execute(q).all(), ["item_id", "screen", "tier", "rule_version", "first_flagged_at"])
+        reviews = _frame(conn.execute(select(r.c.item_id, r.c.reviewed_at, r.c.outcome, r.c.review_id,
+                                             r.c.rule_version_at_review)).all(),
+                         ["item_id", "reviewed_at", "outcome", "review_id", "rule_version_at_review"])
+    columns = YIELD_COLUMNS if by == "tier" else [by if c == "tier" else c for c in YIELD_COLUMNS]
     if items.empty:
-        return pd.DataFrame({c: pd.Series(dtype=float) for c in YIELD_COLUMNS})
+        return pd.DataFrame({c: pd.Series(dtype="str" if c in ("screen", "rule_version") else float)
+                             for c in columns})
     items["first_flagged_at"] = pd.to_datetime(items["first_flagged_at"], utc=True)
     reviews["reviewed_at"] = pd.to_datetime(reviews["reviewed_at"], utc=True)
     reviews = reviews.sort_values(["item_id", "reviewed_at", "review_id"])
-    latest = reviews.drop_duplicates("item_id", keep="last")[["item_id", "outcome"]]
+    latest = reviews.drop_duplicates("item_id", keep="last")[["item_id", "outcome", "rule_version_at_review"]]
     first = reviews.drop_duplicates("item_id", keep="first")[["item_id", "reviewed_at"]]
     items = items.merge(latest, on="item_id", how="left").merge(first, on="item_id", how="left")
     items["hours"] = (items["reviewed_at"] - items["first_flagged_at"]) / pd.Timedelta(hours=1)
+    if by == "rule_version":
+        reviewed_under = items["rule_version_at_review"].where(items["outcome"].notna())
+        items["rule_version"] = reviewed_under.fillna(items["rule_version"]).fillna("").astype("str")
     for o in OUTCOMES:
         items[o] = items["outcome"].eq(o).astype(int)
-    g = items.groupby(["screen", "tier"], sort=True)
+    g = items.groupby(["screen", by], sort=True)
     out = pd.DataFrame({"items": g.size(), "reviewed": g["outcome"].count(),
                         **{o: g[o].sum() for o in OUTCOMES},
                         "median_hours_to_review": g["hours"].median()}).reset_index()
@@ -959,8 +980,9 @@ def yield_table(engine: Engine, since=None) -> pd.DataFrame:
     with np.errstate(invalid="ignore", divide="ignore"):
         out["ppv"] = np.where(out["reviewed"] > 0, positives / out["reviewed"].where(out["reviewed"] > 0), np.nan)
     out["ppv_low"], out["ppv_high"] = wilson_interval(positives, out["reviewed"])
-    out["tier"] = out["tier"].astype("int64")
-    return out[YIELD_COLUMNS]
+    if by == "tier":
+        out["tier"] = out["tier"].astype("int64")
+    return out[columns]
 
 
 # ---------------------------------------------------------------------------------------------

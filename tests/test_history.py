@@ -195,3 +195,98 @@ def test_a_multi_chunk_backfill_flags_items_at_their_ecgs_time_and_a_night_at_it
     nightly = tmp_path / "night"
     run_interval(str(lake), str(nightly), "2026-11-05T00:00:00Z", "2026-11-06T00:00:00Z", quality=False)
     assert stored_first_flagged(nightly).to_dict() == {"E1": pd.Timestamp("2026-11-06T00:00:00Z")}
+
+
+# --- yield by the rule version reviewed under, and --until ----------------------------------------
+V1, V2 = "hyperkalemia/1.0.0", "hyperkalemia/2.0.0"
+
+
+def two_rule_versions(engine):
+    """Night 1 under V1: items a, b, c, d (tier 2); a reviewed finding_real, b finding_not_real,
+    c already_known. Night 2 under V2: d's patient has a more severe finding in d's episode (d is
+    still open, so it takes the V2 finding) and d is then reviewed finding_not_real; new items e
+    (reviewed finding_real) and f (not reviewed). Returns item_id by letter."""
+    first = [finding(x, f"p{x}", "2026-03-01 20:00", tier=2) for x in "abcd"]
+    items, _ = night_with_history(engine, first)
+    ids = items.set_index("ecg_id")["item_id"].to_dict()
+    at = lambda h: NIGHT1 + pd.Timedelta(hours=h)
+    for x, outcome in (("a", "finding_real"), ("b", "finding_not_real"), ("c", "already_known")):
+        record_review(engine, ids[x], outcome, "registrar", None, at(3))
+    second = [with_version(finding("d2", "pd", "2026-03-02 20:00", tier=2, severity=0.6), V2),
+              with_version(finding("e", "pe", "2026-03-02 20:00", tier=2), V2),
+              with_version(finding("f", "pf", "2026-03-02 21:00", tier=2), V2)]
+    items, _ = night_with_history(engine, second, now=NIGHT2, run_id="run-2")
+    ids.update(items[items["ecg_id"].isin(["e", "f"])].set_index("ecg_id")["item_id"].to_dict())
+    record_review(engine, ids["d"], "finding_not_real", "registrar", None, NIGHT2 + pd.Timedelta(hours=2))
+    record_review(engine, ids["e"], "finding_real", "registrar", None, NIGHT2 + pd.Timedelta(hours=4))
+    return ids
+
+
+def test_yield_by_rule_version_counts_each_item_under_the_version_it_was_reviewed_under(engine):
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DeprecationWarning)   # statsmodels' own imports
+        from statsmodels.stats.proportion import proportion_confint
+    two_rule_versions(engine)
+    y = store.yield_table(engine, by="rule_version").set_index(["screen", "rule_version"])
+    assert list(y.reset_index().columns[:2]) == ["screen", "rule_version"]
+    v1, v2 = y.loc[("hyperkalemia", V1)], y.loc[("hyperkalemia", V2)]
+    # By hand: V1 holds a, b, c (3 reviewed, true positives a + c = 2); V2 holds d (reviewed
+    # under V2, its item took the V2 finding before), e (real) and f (not reviewed).
+    assert (v1["items"], v1["reviewed"], v1["finding_real"], v1["already_known"], v1["finding_not_real"]) == (3, 3, 1, 1, 1)
+    assert (v2["items"], v2["reviewed"], v2["finding_real"], v2["finding_not_real"]) == (3, 2, 1, 1)
+    assert v1["ppv"] == pytest.approx(2 / 3) and v2["ppv"] == pytest.approx(0.5)
+    # Wilson 2/3, z = 1.959964: centre (2/3 + z^2/6) / (1 + z^2/3) = 0.573084, half-width
+    # z/(1 + z^2/3) * sqrt(2/27 + z^2/36) = 0.365425 (by hand); 1/2: 0.5 -+ 0.405467.
+    assert (v1["ppv_low"], v1["ppv_high"]) == (pytest.approx(0.207659, abs=1e-5), pytest.approx(0.938509, abs=1e-5))
+    assert (v2["ppv_low"], v2["ppv_high"]) == (pytest.approx(0.094533, abs=1e-5), pytest.approx(0.905467, abs=1e-5))
+    ref_lo, ref_hi = proportion_confint([2, 1], [3, 2], alpha=0.05, method="wilson")
+    np_lo, np_hi = [v1["ppv_low"], v2["ppv_low"]], [v1["ppv_high"], v2["ppv_high"]]
+    assert np_lo == pytest.approx(list(ref_lo), abs=1e-12) and np_hi == pytest.approx(list(ref_hi), abs=1e-12)
+    # a, b, c reviewed 3 h after NIGHT1; d 2 h and e 4 h after NIGHT2, d flagged at NIGHT1 (24 h before).
+    assert v1["median_hours_to_review"] == pytest.approx(3.0) and v2["median_hours_to_review"] == pytest.approx(15.0)
+
+
+def test_yield_until_is_the_open_end_of_the_first_flagged_window(engine):
+    two_rule_versions(engine)
+    items = lambda **kw: int(store.yield_table(engine, **kw)["items"].sum())
+    # a, b, c, d first flagged at NIGHT1 (2026-03-02 02:00); e, f at NIGHT2 (2026-03-03 02:00).
+    assert items() == 6
+    assert items(until="2026-03-03") == 4 and items(since="2026-03-03") == 2
+    assert items(until=NIGHT2) == 4                     # NIGHT2 itself is outside [.., until)
+    assert items(since=NIGHT1, until=NIGHT1) == 0
+    assert items(since="2026-03-02", until="2026-03-04") == 6
+
+
+def test_yield_refuses_an_unknown_grouping(sqlite_engine):
+    with pytest.raises(ValueError, match="grouping"):
+        store.yield_table(sqlite_engine, by="reviewer")
+
+
+def test_the_yield_command_groups_by_rule_version_in_table_json_and_csv(tmp_path, capsys):
+    from cardiosieve.pipeline import commands
+    from tests.test_commands import run
+
+    engine = open_store(store.sqlite_url(tmp_path))
+    two_rule_versions(engine)
+    engine.dispose()
+    assert commands.YIELD_GROUPS == store.YIELD_GROUPS
+    code, text, _ = run(capsys, "yield", "--out", tmp_path, "--by", "rule_version")
+    rows = [line.split() for line in text.splitlines()]
+    assert code == 0 and rows[0][:4] == ["screen", "rule_version", "items", "reviewed"]
+    assert rows[1][:7] == ["hyperkalemia", V1, "3", "3", "1", "1", "0.67"]
+    assert rows[2][:7] == ["hyperkalemia", V2, "3", "2", "1", "0", "0.50"]
+    code, text, _ = run(capsys, "yield", "--out", tmp_path, "--by", "rule_version", "--format", "json",
+                        "--until", "2026-03-03")
+    doc = json.loads(text)
+    assert code == 0 and [(r["rule_version"], r["items"]) for r in doc["rows"]] == [(V1, 3), (V2, 1)]
+    assert "screening" in doc["caution"].lower()
+    code, text, _ = run(capsys, "yield", "--out", tmp_path, "--format", "csv", "--since", "2026-03-03")
+    lines = text.splitlines()
+    assert code == 0 and lines[0].startswith("screen,tier,items,reviewed,") and len(lines) == 2
+    assert lines[1].startswith("hyperkalemia,2,2,1,")
+    code, same, _ = run(capsys, "yield", "--out", tmp_path, "--format", "table")
+    assert same == run(capsys, "yield", "--out", tmp_path, "--format", "text")[1]
+    code, _, err = run(capsys, "yield", "--out", tmp_path, "--until", "not a date")
+    assert code == 2 and err == "cardiosieve: yield: --since/--until: not a date (ISO 8601, e.g. 2026-03-01)\n"
