@@ -66,6 +66,12 @@ def register(subparsers) -> None:
     p.add_argument("--at", metavar="TIME", help="when reviewed (ISO 8601 with offset; default: now)")
     p.add_argument("--import-csv", metavar="FILE", help="import review outcomes from this CSV instead")
     p.add_argument("--timezone", metavar="TZ", help="IANA zone for CSV times written without an offset")
+    p.add_argument("--missed", action="store_true",
+                   help="record a missed case instead: an ECG a screen should have flagged and did not "
+                        "(with --patient, --ecg, --screen, --role; --note and --at as for a review)")
+    p.add_argument("--patient", metavar="ID", help="with --missed: the patient")
+    p.add_argument("--ecg", metavar="ID", help="with --missed: the ECG the screen missed")
+    p.add_argument("--screen", metavar="SCREEN", help=f"with --missed: the screen that missed it ({SCREEN_HELP})")
     add_store_options(p)
     p.set_defaults(handler=handle_review, func=handle_review)
 
@@ -153,6 +159,8 @@ def handle_review(args) -> int:
     url = _url(args)
     if url is None:
         return EXIT_BAD_INPUT
+    if args.missed:
+        return _record_missed(args, url)
     if args.import_csv:
         if args.item_id or args.outcome:
             return _fail("review: give either ITEM_ID --outcome ... or --import-csv FILE, not both")
@@ -184,8 +192,31 @@ def handle_review(args) -> int:
     return EXIT_OK
 
 
+def _record_missed(args, url: str) -> int:
+    from cardiosieve.pipeline.store import record_missed_case
+
+    if args.item_id or args.outcome or args.import_csv:
+        return _fail("review --missed: give --patient, --ecg, --screen and --role, not an item, "
+                     "--outcome or --import-csv")
+    if not (args.patient and args.ecg and args.screen and args.role):
+        return _fail("review --missed: --patient, --ecg, --screen and --role are required")
+    import pandas as pd
+
+    engine = _store(url)
+    try:
+        at = pd.Timestamp(args.at) if args.at else pd.Timestamp.now(tz="UTC")   # time of entry
+        recorded = record_missed_case(engine, args.patient, args.ecg, args.screen, args.role, args.note, at)
+    except BadInputError:
+        raise
+    except ValueError as exc:
+        return _fail(str(exc))
+    print("missed case recorded" if recorded else "missed case already recorded")
+    return EXIT_OK
+
+
 PPV_NOTE = ("ppv = (finding_real + already_known) / reviewed, by each item's latest review; "
-            "95 % Wilson score interval.")
+            "95 % Wilson score interval. missed_of_screen: missed cases recorded for the screen "
+            "(the screen's count on each of its rows).")
 
 
 def handle_yield(args) -> int:
@@ -216,7 +247,8 @@ def handle_yield(args) -> int:
         "finding_real": table["finding_real"], "already_known": table["already_known"],
         "ppv": [num(x, ".2f") for x in table["ppv"]],
         "ppv_95ci": ["-" if lo != lo else f"{lo:.2f}-{hi:.2f}" for lo, hi in zip(table["ppv_low"], table["ppv_high"])],
-        "median_h_to_review": [num(x, ".1f") for x in table["median_hours_to_review"]]})
+        "median_h_to_review": [num(x, ".1f") for x in table["median_hours_to_review"]],
+        "missed_of_screen": table["missed_cases_of_screen"]})
     window = (f" since {args.since}" if args.since else "") + (f" before {args.until}" if args.until else "")
     print(shown.to_string(index=False) if len(shown) else "no items flagged" + window)
     print(PPV_NOTE)

@@ -214,6 +214,21 @@ finding_history = Table(
 )
 HISTORY_COLUMNS = [c.name for c in finding_history.columns if c.name != "history_id"]
 
+# A case a screen should have flagged and did not, recorded by a reviewer (schema 4), for
+# sensitivity estimates later; one per ECG and screen. Counted only in the yield table yet.
+missed_case = Table(
+    "missed_case", metadata,
+    Column("missed_id", Integer, primary_key=True, autoincrement=True),
+    Column("patient_id", Text, nullable=False),
+    Column("ecg_id", Text, nullable=False),
+    Column("screen", String(64), nullable=False),
+    Column("recorded_at", UTCDateTime, nullable=False),
+    Column("reviewer_role", String(128), nullable=False),
+    Column("note", Text),
+    UniqueConstraint("ecg_id", "screen", name="uq_missed_case_entry"),
+    Index("ix_missed_case_screen", "screen"),
+)
+
 # The schema's version. Each is one Alembic revision in pipeline/migrations/versions, its id the
 # version in four digits; a new one bumps this number (DEVELOPERS.md, "Changing the store's schema").
 SCHEMA_VERSION = 4
@@ -820,6 +835,42 @@ def record_review(engine: Engine, item_id: str, outcome: str, role: str, note: s
     return True
 
 
+def record_missed_case(engine: Engine, patient_id: str, ecg_id: str, screen: str, role: str,
+                       note: str | None = None, recorded_at=None) -> bool:
+    """Record a missed case: an ECG of `patient_id` that `screen` should have flagged and did
+    not, noted by a reviewer in `role` at `recorded_at` (tz-aware; the CLI passes the time of
+    entry). Returns False when that ECG is already recorded as missed by that screen. Raises
+    ValueError (naming the field, never its value) for an unknown screen, a missing patient,
+    ECG or role, text over its documented length or holding a NUL byte, or a naive time."""
+    from cardiosieve.screens import SCREENS
+
+    if screen not in SCREENS:
+        raise ValueError(f"missed case: unknown screen (known: {', '.join(SCREENS)})")
+    fields = {"patient": patient_id, "ECG id": ecg_id, "reviewer role": role}
+    for name, value in fields.items():
+        if value is None or not str(value).strip():
+            raise ValueError(f"missed case: {name} is required")
+    text = {"reviewer role": (str(role).strip(), ROLE_MAX_CHARS), "note": (note or "", NOTE_MAX_CHARS)}
+    for name, (value, limit) in text.items():
+        if len(value) > limit:
+            raise ValueError(f"missed case: {name} longer than {limit} characters")
+        if "\x00" in value:
+            raise ValueError(f"missed case: {name} holds a NUL byte")
+    when = pd.Timestamp(recorded_at)
+    if when.tzinfo is None:
+        raise ValueError("missed case: the time must carry a UTC offset")
+    row = {"patient_id": str(patient_id).strip(), "ecg_id": str(ecg_id).strip(), "screen": screen,
+           "recorded_at": when.tz_convert("UTC"), "reviewer_role": str(role).strip(), "note": note or None}
+    m = missed_case
+    with _write_transaction(engine) as conn:
+        known = conn.execute(select(func.count()).select_from(m).where(
+            m.c.ecg_id == row["ecg_id"], m.c.screen == screen)).scalar()
+        if known:
+            return False
+        conn.execute(insert(m), [row])
+    return True
+
+
 def _duplicates(conn: Connection, df: pd.DataFrame) -> pd.Series:
     """True where (item_id, reviewed_at, reviewer_role) is already stored or repeats an earlier row."""
     r = review
@@ -923,7 +974,7 @@ def wilson_interval(k, n, confidence: float = WILSON_CONFIDENCE):
 
 YIELD_COLUMNS = ["screen", "tier", "items", "reviewed", OUTCOME_FINDING_REAL, OUTCOME_ALREADY_KNOWN,
                  OUTCOME_FINDING_NOT_REAL, OUTCOME_DATA_PROBLEM, "ppv", "ppv_low", "ppv_high",
-                 "median_hours_to_review"]
+                 "median_hours_to_review", "missed_cases_of_screen"]
 YIELD_GROUPS = ("tier", "rule_version")   # the second grouping of a yield table, after screen
 
 
@@ -937,7 +988,10 @@ def yield_table(engine: Engine, since=None, until=None, by: str = "tier") -> pd.
     """Per screen and tier (or rule version): items flagged in [since, until) (first_flagged_at;
     either bound may be None; a date without a time is midnight UTC), items reviewed, each item's
     latest outcome counted, PPV = (finding_real + already_known) / reviewed with its 95 % Wilson
-    interval, and the median hours from first flag to first review.
+    interval, and the median hours from first flag to first review. missed_cases_of_screen: the
+    missed cases recorded for the screen in the same window (recorded_at), the same number on
+    each of the screen's rows (it is the screen's, not the row's: do not add it up over rows); a
+    screen with missed cases and no item flagged gets one row of its own, without tier.
 
     by="tier": the item's tier as stored. by="rule_version": the rule version an item was
     reviewed under (rule_version_at_review of its latest review, the one whose outcome counts),
@@ -956,8 +1010,15 @@ def yield_table(engine: Engine, since=None, until=None, by: str = "tier") -> pd.
         reviews = _frame(conn.execute(select(r.c.item_id, r.c.reviewed_at, r.c.outcome, r.c.review_id,
                                              r.c.rule_version_at_review)).all(),
                          ["item_id", "reviewed_at", "outcome", "review_id", "rule_version_at_review"])
+        m = missed_case
+        mq = select(m.c.screen, func.count()).group_by(m.c.screen)
+        if since is not None:
+            mq = mq.where(m.c.recorded_at >= _utc_bound(since))
+        if until is not None:
+            mq = mq.where(m.c.recorded_at < _utc_bound(until))
+        missed = dict(conn.execute(mq).all())
     columns = YIELD_COLUMNS if by == "tier" else [by if c == "tier" else c for c in YIELD_COLUMNS]
-    if items.empty:
+    if items.empty and not missed:
         return pd.DataFrame({c: pd.Series(dtype="str" if c in ("screen", "rule_version") else float)
                              for c in columns})
     items["first_flagged_at"] = pd.to_datetime(items["first_flagged_at"], utc=True)
@@ -982,6 +1043,14 @@ def yield_table(engine: Engine, since=None, until=None, by: str = "tier") -> pd.
     out["ppv_low"], out["ppv_high"] = wilson_interval(positives, out["reviewed"])
     if by == "tier":
         out["tier"] = out["tier"].astype("int64")
+    alone = sorted(set(missed) - set(out["screen"]))
+    if alone:   # missed cases of a screen that flagged nothing in the window: a row of their own
+        extra = pd.DataFrame({"screen": alone, "items": 0, "reviewed": 0, **{o: 0 for o in OUTCOMES}})
+        out = pd.concat([out, extra], ignore_index=True).sort_values(["screen", by], kind="mergesort")
+        out = out.reset_index(drop=True)
+        if by == "tier":
+            out["tier"] = out["tier"].astype("Int64")
+    out["missed_cases_of_screen"] = out["screen"].map(missed).fillna(0).astype("int64")
     return out[columns]
 
 

@@ -290,3 +290,56 @@ def test_the_yield_command_groups_by_rule_version_in_table_json_and_csv(tmp_path
     assert same == run(capsys, "yield", "--out", tmp_path, "--format", "text")[1]
     code, _, err = run(capsys, "yield", "--out", tmp_path, "--until", "not a date")
     assert code == 2 and err == "cardiosieve: yield: --since/--until: not a date (ISO 8601, e.g. 2026-03-01)\n"
+
+
+# --- missed cases ---------------------------------------------------------------------------------
+def test_a_missed_case_is_recorded_once_per_ecg_and_screen_and_counted_in_yield_per_screen(engine):
+    two_rule_versions(engine)
+    at = pd.Timestamp("2026-03-03 09:00", tz="UTC")
+    assert store.record_missed_case(engine, "px", "ex1", "hyperkalemia", "registrar", "K 6.8, not flagged", at)
+    assert not store.record_missed_case(engine, "px", "ex1", "hyperkalemia", "consultant", None, at)   # same ECG
+    assert store.record_missed_case(engine, "px", "ex2", "hyperkalemia", "registrar", None, at)
+    assert store.record_missed_case(engine, "py", "ey1", "st_deviation", "registrar", None, at)
+    with engine.connect() as conn:
+        rows = conn.execute(select(store.missed_case.c.patient_id, store.missed_case.c.ecg_id,
+                                   store.missed_case.c.screen, store.missed_case.c.recorded_at,
+                                   store.missed_case.c.reviewer_role, store.missed_case.c.note)
+                            .order_by(store.missed_case.c.missed_id)).all()
+    assert [tuple(r) for r in rows] == [("px", "ex1", "hyperkalemia", at, "registrar", "K 6.8, not flagged"),
+                                        ("px", "ex2", "hyperkalemia", at, "registrar", None),
+                                        ("py", "ey1", "st_deviation", at, "registrar", None)]
+    y = store.yield_table(engine)
+    # hyperkalemia: 2 missed cases, on its one row (tier 2); st_deviation flagged nothing, so its
+    # 1 missed case gets a row of its own, without tier and with no items.
+    assert y[["screen", "items", "missed_cases_of_screen"]].values.tolist() == [
+        ["hyperkalemia", 6, 2], ["st_deviation", 0, 1]]
+    assert pd.isna(y["tier"].iloc[1]) and pd.isna(y["ppv"].iloc[1])
+    # The window applies to when a missed case was recorded: none before 2026-03-03 09:00.
+    assert store.yield_table(engine, until="2026-03-03T09:00:00Z")["missed_cases_of_screen"].tolist() == [0]
+
+
+@pytest.mark.parametrize("screen, role, note, at, why", [
+    ("qt_long", "registrar", None, "2026-03-03T09:00:00Z", "unknown screen"),
+    ("long_qt", " ", None, "2026-03-03T09:00:00Z", "reviewer role is required"),
+    ("long_qt", "r" * 129, None, "2026-03-03T09:00:00Z", "reviewer role longer than 128 characters"),
+    ("long_qt", "registrar", "bad\x00note", "2026-03-03T09:00:00Z", "note holds a NUL byte"),
+    ("long_qt", "registrar", None, "2026-03-03T09:00:00", "UTC offset"),
+])
+def test_a_bad_missed_case_is_refused_naming_the_field_not_its_value(sqlite_engine, screen, role, note, at, why):
+    with pytest.raises(ValueError, match=why) as raised:
+        store.record_missed_case(sqlite_engine, "secret-patient", "secret-ecg", screen, role, note, pd.Timestamp(at))
+    assert "secret" not in str(raised.value) and "qt_long" not in str(raised.value)
+
+
+def test_review_missed_records_a_case_from_the_command_line(tmp_path, capsys):
+    from tests.test_commands import run
+
+    open_store(store.sqlite_url(tmp_path)).dispose()
+    argv = ["review", "--missed", "--patient", "pat-Z", "--ecg", "ecg-Z", "--screen", "long_qt", "--role", "registrar",
+            "--note", "QTc 540 on a manual read", "--at", "2026-03-03T09:00:00Z", "--out", tmp_path]
+    assert run(capsys, *argv)[:2] == (0, "missed case recorded\n")
+    assert run(capsys, *argv)[:2] == (0, "missed case already recorded\n")
+    code, _, err = run(capsys, "review", "--missed", "--patient", "pat-Z", "--out", tmp_path)
+    assert code == 2 and "--ecg, --screen and --role are required" in err and "pat-Z" not in err
+    code, text, _ = run(capsys, "yield", "--out", tmp_path, "--format", "json")
+    assert [(r["screen"], r["items"], r["missed_cases_of_screen"]) for r in json.loads(text)["rows"]] == [("long_qt", 0, 1)]

@@ -406,7 +406,8 @@ def test_revision_3_ranks_the_queue_only_and_indexes_status_and_run_id(empty_url
 
 def test_revision_4_backfills_reviews_from_their_items_and_starts_an_empty_findings_history(empty_url):
     """From 0003 to 0004: every review is kept as it was and gets its item's current rule
-    version and tier (the migration's documented backfill), finding_history is made empty,
+    version and tier (the migration's documented backfill), finding_history and missed_case
+    are made empty,
     and the version row says 4."""
     old = build_store_at(empty_url, "0003")
     rows = [finding("e1", "p1", "2026-03-01 20:00", tier=2),
@@ -432,6 +433,7 @@ def test_revision_4_backfills_reviews_from_their_items_and_starts_an_empty_findi
         backfilled = conn.execute(select(review.c.review_id, review.c.rule_version_at_review, review.c.tier_at_review)
                                   .order_by(review.c.review_id)).all()
         history = conn.execute(select(func.count()).select_from(store.finding_history)).scalar()
+        history += conn.execute(select(func.count()).select_from(store.missed_case)).scalar()
     engine.dispose()
     assert_same(after, before, skip=("revision", "version", "ddl"))   # items and reviews kept
     first = int(before["reviews"]["review_id"].min())

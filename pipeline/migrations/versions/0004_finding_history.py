@@ -6,6 +6,9 @@ a later audit or a replay of other thresholds stands on). Runs before this revis
 findings behind, so the table starts empty: its history begins with the first run after the
 upgrade.
 
+Creates missed_case, empty: cases a screen should have flagged and did not, recorded by
+reviewers (`cardiosieve review --missed`) for sensitivity estimates later.
+
 Adds review.rule_version_at_review and review.tier_at_review, the item's rule version and tier
 when the review was recorded. Existing reviews are backfilled from their item's current
 rule_version and tier: the best the store knows, but not necessarily what the reviewer saw if
@@ -59,6 +62,18 @@ def upgrade() -> None:
     )
     op.create_index("ix_finding_history_item", "finding_history", ["item_id"])
     op.create_index("ix_finding_history_ecg", "finding_history", ["ecg_id"])
+    op.create_table(
+        "missed_case",
+        sa.Column("missed_id", sa.Integer, primary_key=True, autoincrement=True),
+        sa.Column("patient_id", sa.Text, nullable=False),
+        sa.Column("ecg_id", sa.Text, nullable=False),
+        sa.Column("screen", sa.String(64), nullable=False),
+        sa.Column("recorded_at", sa.DateTime(timezone=True), nullable=False),
+        sa.Column("reviewer_role", sa.String(128), nullable=False),
+        sa.Column("note", sa.Text),
+        sa.UniqueConstraint("ecg_id", "screen", name="uq_missed_case_entry"),
+    )
+    op.create_index("ix_missed_case_screen", "missed_case", ["screen"])
     op.add_column("review", sa.Column("rule_version_at_review", sa.String(64)))
     op.add_column("review", sa.Column("tier_at_review", sa.Integer))
     t, r = worklist_item, review
