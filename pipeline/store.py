@@ -1,8 +1,13 @@
-"""The worklist in SQL (SQLAlchemy 2): items, review outcomes, yield and export.
+"""The worklist in SQL (SQLAlchemy 2): items, findings history, review outcomes, missed cases,
+yield and export.
 
 Tables
     worklist_item       one row per item (pipeline.worklist.ITEM_COLUMNS), primary key item_id
-    review              one row per recorded review outcome; the latest review of an item closes it
+    review              one row per recorded review outcome; the latest review of an item closes it;
+                        with the item's rule version and tier when it was recorded
+    finding_history     every finding of every run with the item it folded into, append-only,
+                        one row per (run_id, screen, ecg_id, rule_version)
+    missed_case         a case a screen should have flagged and did not, one per (ecg_id, screen)
     cardiosieve_schema  one row: the schema version (SCHEMA_VERSION), set by each migration
     cardiosieve_alembic_version  one row: the Alembic revision of the schema (VERSION_TABLE)
 
@@ -14,6 +19,10 @@ version, the revision id the version in four digits:
     0003  `rank` is the place in the review queue: explained and closed items lose theirs
           (NULL); indexes on status and run_id, so that ranking and the night's read-back
           follow the queue's length, not the store's history
+    0004  finding_history (every run's findings with their item, appended in the upsert's
+          transaction) and missed_case (review --missed), both empty; review gains
+          rule_version_at_review and tier_at_review, existing reviews backfilled from their
+          item's current values
 The nightly run (open_store with create=True) and `cardiosieve db upgrade` (upgrade_store)
 bring a store to HEAD_REVISION in one transaction under the store's lock (see _upgrade); a
 store of a release before the migrations is recognised by its tables and stamped first. The
