@@ -53,7 +53,9 @@ def register(subparsers) -> None:
                                           "reviewer_role, outcome, note). Outcomes: finding_real (the "
                                           "flagged abnormality is there and was news), finding_not_real "
                                           "(it is not there), already_known (there, already known), "
-                                          "data_problem (flagged because of wrong or mismatched data).",
+                                          "data_problem (flagged because of wrong or mismatched data). "
+                                          "With --missed, record instead a case a screen should have "
+                                          "flagged and did not (patient, ECG, screen, role, note, time).",
                               epilog=f"Exit codes: {EXIT_OK} recorded (or already recorded), {EXIT_BAD_INPUT} bad "
                                      f"input (one-line reason; for --import-csv a whole-file error, nothing "
                                      f"imported), {EXIT_PARTIAL} --import-csv rejected some lines (each "

@@ -59,6 +59,11 @@ def test_every_finding_of_a_run_is_kept_with_the_item_it_folded_into(engine):
     assert json.loads(h.loc["e2", "score_parts"])["severity"] == 0.4
 
 
+def test_the_history_rows_built_are_the_columns_of_the_table():
+    from cardiosieve.pipeline import worklist
+    assert worklist.HISTORY_COLUMNS == store.HISTORY_COLUMNS
+
+
 def test_rerunning_the_same_window_under_the_same_rules_adds_no_history(engine):
     night_with_history(engine, NIGHT)
     _, counts = night_with_history(engine, NIGHT)
