@@ -31,6 +31,9 @@ SCREEN_HELP = "hyperkalemia, long_qt, st_deviation"
 STATUS_HELP = "open, reopened, explained, closed"
 TIERS = (1, 2, 3, 4)
 FORMATS = ("text", "json", "csv")
+YIELD_FORMATS = ("table", "text", "json", "csv")   # text: the name of table before, still taken
+# Kept in step with pipeline.store.YIELD_GROUPS (tests/test_history.py checks it).
+YIELD_GROUPS = ("tier", "rule_version")
 TEXT_WIDTH = (60, 110)       # text output wraps at the terminal's width, within these bounds
 
 
@@ -50,7 +53,9 @@ def register(subparsers) -> None:
                                           "reviewer_role, outcome, note). Outcomes: finding_real (the "
                                           "flagged abnormality is there and was news), finding_not_real "
                                           "(it is not there), already_known (there, already known), "
-                                          "data_problem (flagged because of wrong or mismatched data).",
+                                          "data_problem (flagged because of wrong or mismatched data). "
+                                          "With --missed, record instead a case a screen should have "
+                                          "flagged and did not (patient, ECG, screen, role, note, time).",
                               epilog=f"Exit codes: {EXIT_OK} recorded (or already recorded), {EXIT_BAD_INPUT} bad "
                                      f"input (one-line reason; for --import-csv a whole-file error, nothing "
                                      f"imported), {EXIT_PARTIAL} --import-csv rejected some lines (each "
@@ -63,15 +68,26 @@ def register(subparsers) -> None:
     p.add_argument("--at", metavar="TIME", help="when reviewed (ISO 8601 with offset; default: now)")
     p.add_argument("--import-csv", metavar="FILE", help="import review outcomes from this CSV instead")
     p.add_argument("--timezone", metavar="TZ", help="IANA zone for CSV times written without an offset")
+    p.add_argument("--missed", action="store_true",
+                   help="record a missed case instead: an ECG a screen should have flagged and did not "
+                        "(with --patient, --ecg, --screen, --role; --note and --at as for a review)")
+    p.add_argument("--patient", metavar="ID", help="with --missed: the patient")
+    p.add_argument("--ecg", metavar="ID", help="with --missed: the ECG the screen missed")
+    p.add_argument("--screen", metavar="SCREEN", help=f"with --missed: the screen that missed it ({SCREEN_HELP})")
     add_store_options(p)
     p.set_defaults(handler=handle_review, func=handle_review)
 
     p = subparsers.add_parser("yield", help="per screen and tier: items, reviewed, finding_real, PPV (95 %% Wilson)",
-                              description="Review yield per screen and tier, for tuning thresholds. "
-                                          "PPV = (finding_real + already_known) / reviewed.")
+                              description="Review yield per screen and tier (or rule version), for tuning "
+                                          "thresholds. PPV = (finding_real + already_known) / reviewed.")
     add_store_options(p)
     p.add_argument("--since", metavar="DATE", help="only items first flagged at or after DATE (UTC)")
-    p.add_argument("--format", default="text", choices=FORMATS, help="text (default), json or csv")
+    p.add_argument("--until", metavar="DATE", help="only items first flagged before DATE (UTC)")
+    p.add_argument("--by", default="tier", choices=YIELD_GROUPS,
+                   help="group each screen by tier (default) or by rule_version: the rule version an "
+                        "item was reviewed under (its current one while not reviewed)")
+    p.add_argument("--format", default="table", choices=YIELD_FORMATS,
+                   help="table (default; text is the same), json or csv")
     p.set_defaults(handler=handle_yield, func=handle_yield)
 
     p = subparsers.add_parser("export", help="write the stored worklist as CSV for spreadsheets")
@@ -166,6 +182,8 @@ def handle_review(args) -> int:
     url = _url(args)
     if url is None:
         return EXIT_BAD_INPUT
+    if args.missed:
+        return _record_missed(args, url)
     if args.import_csv:
         if args.item_id or args.outcome:
             return _fail("review: give either ITEM_ID --outcome ... or --import-csv FILE, not both")
@@ -197,8 +215,31 @@ def handle_review(args) -> int:
     return EXIT_OK
 
 
+def _record_missed(args, url: str) -> int:
+    from cardiosieve.pipeline.store import record_missed_case
+
+    if args.item_id or args.outcome or args.import_csv:
+        return _fail("review --missed: give --patient, --ecg, --screen and --role, not an item, "
+                     "--outcome or --import-csv")
+    if not (args.patient and args.ecg and args.screen and args.role):
+        return _fail("review --missed: --patient, --ecg, --screen and --role are required")
+    import pandas as pd
+
+    engine = _store(url)
+    try:
+        at = pd.Timestamp(args.at) if args.at else pd.Timestamp.now(tz="UTC")   # time of entry
+        recorded = record_missed_case(engine, args.patient, args.ecg, args.screen, args.role, args.note, at)
+    except BadInputError:
+        raise
+    except ValueError as exc:
+        return _fail(str(exc))
+    print("missed case recorded" if recorded else "missed case already recorded")
+    return EXIT_OK
+
+
 PPV_NOTE = ("ppv = (finding_real + already_known) / reviewed, by each item's latest review; "
-            "95 % Wilson score interval.")
+            "95 % Wilson score interval. missed_of_screen: missed cases recorded for the screen "
+            "(the screen's count on each of its rows).")
 
 
 def handle_yield(args) -> int:
@@ -207,7 +248,12 @@ def handle_yield(args) -> int:
     url = _url(args)
     if url is None:
         return EXIT_BAD_INPUT
-    table = yield_table(_store(url), since=args.since)
+    try:
+        table = yield_table(_store(url), since=args.since, until=args.until, by=args.by)
+    except BadInputError:
+        raise
+    except ValueError:                     # a date pandas cannot read
+        return _fail("yield: --since/--until: not a date (ISO 8601, e.g. 2026-03-01)")
     if args.format == "json":
         from cardiosieve.pipeline.jsontext import plain
         _print_json({"caution": CAUTION, "ppv": PPV_NOTE, "rows": plain(table.to_dict("records"))})
@@ -220,12 +266,14 @@ def handle_yield(args) -> int:
     def num(x, fmt):
         return "-" if x != x else format(x, fmt)   # NaN shows as "-"
     shown = pd.DataFrame({
-        "screen": table["screen"], "tier": table["tier"], "items": table["items"], "reviewed": table["reviewed"],
+        "screen": table["screen"], args.by: table[args.by], "items": table["items"], "reviewed": table["reviewed"],
         "finding_real": table["finding_real"], "already_known": table["already_known"],
         "ppv": [num(x, ".2f") for x in table["ppv"]],
         "ppv_95ci": ["-" if lo != lo else f"{lo:.2f}-{hi:.2f}" for lo, hi in zip(table["ppv_low"], table["ppv_high"])],
-        "median_h_to_review": [num(x, ".1f") for x in table["median_hours_to_review"]]})
-    print(shown.to_string(index=False) if len(shown) else "no items flagged" + (f" since {args.since}" if args.since else ""))
+        "median_h_to_review": [num(x, ".1f") for x in table["median_hours_to_review"]],
+        "missed_of_screen": table["missed_cases_of_screen"]})
+    window = (f" since {args.since}" if args.since else "") + (f" before {args.until}" if args.until else "")
+    print(shown.to_string(index=False) if len(shown) else "no items flagged" + window)
     print(PPV_NOTE)
     return EXIT_OK
 

@@ -418,20 +418,30 @@ def chunk_run_id(lo: pd.Timestamp, hi: pd.Timestamp) -> str:
     return f"{lo:%Y%m%dT%H%M%SZ}_{hi:%Y%m%dT%H%M%SZ}"
 
 
+# A run over more than this is a backfill (or a run of several chunks): see run_interval.
+BACKFILL_AFTER = pd.Timedelta(days=1)
+
+
 def stage_worklist(out, start, end, config=None, db=None, settings: Settings | None = None,
-                   earlier_run_ids=(), write: bool = True) -> dict:
+                   earlier_run_ids=(), write: bool = True, backfill: bool | None = None) -> dict:
     """Fold findings into worklist items, upsert them into the database in one transaction, and
     write the night's worklist to the stage's worklist.parquet (published by stage_finish): the
     active items and the items this run inserted or changed, in queue order with the store's
     rank (store.read_worklist). `earlier_run_ids`: the run_ids of a backfill's earlier
     chunks, whose changed items belong to the run's worklist too. `write=False` (a backfill's
     earlier chunks, whose worklist.parquet stage_finish never publishes) skips the read-back and
-    the file; the summary then has no by_screen."""
+    the file; the summary then has no by_screen. Every finding goes to the store's
+    finding_history, with the item it folded into, in the upsert's transaction. `backfill`
+    (run_interval sets it for a run of several chunks or more than a day; None: an interval of
+    more than a day is one): new items are first flagged at their ECG's acquisition time, not
+    at the chunk's end (worklist.build_items)."""
     from cardiosieve.pipeline import store, worklist
 
     settings = settings or load_settings(config)
     rules = site_rules(settings)
     lo, hi = interval(start, end)
+    if backfill is None:
+        backfill = hi - lo > BACKFILL_AFTER
     d = stage_dir(out, lo, hi)
     findings = pd.read_parquet(d / "findings.parquet")
     aligned = pd.read_parquet(d / "aligned.parquet")
@@ -440,10 +450,12 @@ def stage_worklist(out, start, end, config=None, db=None, settings: Settings | N
         patients = sorted(set(findings["patient_id"]) | set(aligned["patient_id"]))
         existing = store.read_items(engine, patient_ids=patients)
         run_id = chunk_run_id(lo, hi)
-        items = worklist.build_items(findings, aligned, existing, run_id=run_id, now=hi,
-                                     episode_h=settings.windows["episode_h"],
-                                     explainers=worklist.explainers_for(rules))
-        db_counts = store.upsert_items(engine, items)
+        episode_h = settings.windows["episode_h"]
+        folded = worklist.fold_findings(findings, aligned, existing, episode_h)
+        items = worklist.build_items(findings, aligned, existing, run_id=run_id, now=hi, episode_h=episode_h,
+                                     explainers=worklist.explainers_for(rules), backfill=backfill,
+                                     folded=folded)
+        db_counts = store.upsert_items(engine, items, history=worklist.history_rows(folded, run_id, hi))
         fault_point("after_commit")
         if not write:
             (d / "worklist.parquet").unlink(missing_ok=True)   # none from an earlier run stays
@@ -516,6 +528,9 @@ def run_interval(lake, out, start, end, config=None, db=None, quality: bool = Tr
     out = usable_out(out)
     check_store_url(db or sqlite_url(out))
     bounds = chunk_bounds(lake, lo, hi, chunk_days)
+    # A backfill screens ECGs long after they were taken: its items are first flagged at their
+    # ECG's time, not at a chunk's end (docs/prioritisation.md). A night is one chunk of a day.
+    backfill = len(bounds) > 2 or hi - lo > BACKFILL_AFTER
     with run_lock(out, db or sqlite_url(out)), _gate(quality, config, gate) as gate:   # one run per OUT and store
         clean_leftovers(out)                      # what a crashed run left behind
         progress = Progress(bounds)
@@ -527,7 +542,7 @@ def run_interval(lake, out, start, end, config=None, db=None, quality: bool = Tr
             last = k + 1 == len(chunks)
             earlier = [chunk_run_id(x, y) for x, y in chunks[:k]] if last else []
             parts.append(_run_chunk(lake, out, a, b, settings, db, gate, label=progress.label(k),
-                                    write_worklist=last, earlier_run_ids=earlier))
+                                    write_worklist=last, earlier_run_ids=earlier, backfill=backfill))
             progress.done(k, parts[-1])
         summary = stage_finish(out, lo, hi, _add_up(parts) | {"chunks": len(parts)}, settings, bounds)
         log.info("run [%s, %s) published in %.1f s", lo.isoformat(), hi.isoformat(), progress.elapsed())
@@ -673,7 +688,7 @@ def _link_or_copy(src: Path, dst: Path) -> None:
 
 
 def _run_chunk(lake, out, lo, hi, settings: Settings, db, gate, label: str = "chunk",
-               write_worklist: bool = True, earlier_run_ids=()) -> dict:
+               write_worklist: bool = True, earlier_run_ids=(), backfill: bool = False) -> dict:
     """One chunk through every stage. With a `gate` (pipeline/gateworker.py) the row checks run
     here and the verdict in the worker, awaited before the worklist stage: nothing reaches the
     store or the outputs unless the gate passed."""
@@ -704,7 +719,7 @@ def _run_chunk(lake, out, lo, hi, settings: Settings, db, gate, label: str = "ch
         summary["quality"] = timed("quality_wait", gate.result)
         fault_point("after_quality")
     summary["worklist"] = timed("worklist", stage_worklist, out, lo, hi, db=db, settings=settings,
-                                earlier_run_ids=earlier_run_ids, write=write_worklist)
+                                earlier_run_ids=earlier_run_ids, write=write_worklist, backfill=backfill)
     summary["seconds"] = seconds
     return summary
 

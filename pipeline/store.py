@@ -1,8 +1,13 @@
-"""The worklist in SQL (SQLAlchemy 2): items, review outcomes, yield and export.
+"""The worklist in SQL (SQLAlchemy 2): items, findings history, review outcomes, missed cases,
+yield and export.
 
 Tables
     worklist_item       one row per item (pipeline.worklist.ITEM_COLUMNS), primary key item_id
-    review              one row per recorded review outcome; the latest review of an item closes it
+    review              one row per recorded review outcome; the latest review of an item closes it;
+                        with the item's rule version and tier when it was recorded
+    finding_history     every finding of every run with the item it folded into, append-only,
+                        one row per (run_id, screen, ecg_id, rule_version)
+    missed_case         a case a screen should have flagged and did not, one per (ecg_id, screen)
     cardiosieve_schema  one row: the schema version (SCHEMA_VERSION), set by each migration
     cardiosieve_alembic_version  one row: the Alembic revision of the schema (VERSION_TABLE)
 
@@ -14,6 +19,10 @@ version, the revision id the version in four digits:
     0003  `rank` is the place in the review queue: explained and closed items lose theirs
           (NULL); indexes on status and run_id, so that ranking and the night's read-back
           follow the queue's length, not the store's history
+    0004  finding_history (every run's findings with their item, appended in the upsert's
+          transaction) and missed_case (review --missed), both empty; review gains
+          rule_version_at_review and tier_at_review, existing reviews backfilled from their
+          item's current values
 The nightly run (open_store with create=True) and `cardiosieve db upgrade` (upgrade_store)
 bring a store to HEAD_REVISION in one transaction under the store's lock (see _upgrade); a
 store of a release before the migrations is recognised by its tables and stamped first. The
@@ -179,11 +188,59 @@ review = Table(
     CheckConstraint(f"outcome IN ({_in_list(OUTCOMES)})", name="ck_review_outcome"),
     UniqueConstraint("item_id", "reviewed_at", "reviewer_role", name="uq_review_entry"),
     Index("ix_review_item", "item_id"),
+    # The item's rule version and tier when the review was recorded (schema 4): a later rerun
+    # may change the item, and yield by rule version must count what the reviewer saw.
+    Column("rule_version_at_review", String(64)),
+    Column("tier_at_review", Integer),
+)
+
+# Every finding of every run, as the run made it, with the item it folded into (schema 4).
+# Append-only: rows are inserted in the transaction of the night's upsert (upsert_items with
+# `findings`) and never updated or deleted. One row per (run_id, screen, ecg_id, rule_version):
+# a rerun of the same window under the same rules adds nothing, under changed rules (another
+# version string, a site override included) it adds its findings.
+finding_history = Table(
+    "finding_history", metadata,
+    Column("history_id", Integer, primary_key=True, autoincrement=True),
+    Column("run_id", String(128), nullable=False),
+    Column("run_end_at", UTCDateTime, nullable=False),
+    Column("item_id", String(40), ForeignKey("worklist_item.item_id"), nullable=False),
+    Column("screen", String(64), nullable=False),
+    Column("ecg_id", Text, nullable=False),
+    Column("patient_id", Text, nullable=False),
+    Column("acquired_at", UTCDateTime, nullable=False),
+    Column("tier", Integer, nullable=False),
+    Column("rule_version", String(64), nullable=False),
+    Column("summary", Text),
+    Column("evidence", Text),          # JSON
+    Column("caveats", Text),           # JSON list
+    Column("territories", Text),
+    Column("score_parts", Text),       # JSON object, with the care location the score used
+    CheckConstraint("tier BETWEEN 1 AND 4", name="ck_finding_history_tier"),
+    UniqueConstraint("run_id", "screen", "ecg_id", "rule_version", name="uq_finding_history_entry"),
+    Index("ix_finding_history_item", "item_id"),
+    Index("ix_finding_history_ecg", "ecg_id"),
+)
+HISTORY_COLUMNS = [c.name for c in finding_history.columns if c.name != "history_id"]
+
+# A case a screen should have flagged and did not, recorded by a reviewer (schema 4), for
+# sensitivity estimates later; one per ECG and screen. Counted only in the yield table yet.
+missed_case = Table(
+    "missed_case", metadata,
+    Column("missed_id", Integer, primary_key=True, autoincrement=True),
+    Column("patient_id", Text, nullable=False),
+    Column("ecg_id", Text, nullable=False),
+    Column("screen", String(64), nullable=False),
+    Column("recorded_at", UTCDateTime, nullable=False),
+    Column("reviewer_role", String(128), nullable=False),
+    Column("note", Text),
+    UniqueConstraint("ecg_id", "screen", name="uq_missed_case_entry"),
+    Index("ix_missed_case_screen", "screen"),
 )
 
 # The schema's version. Each is one Alembic revision in pipeline/migrations/versions, its id the
 # version in four digits; a new one bumps this number (DEVELOPERS.md, "Changing the store's schema").
-SCHEMA_VERSION = 3
+SCHEMA_VERSION = 4
 HEAD_REVISION = f"{SCHEMA_VERSION:04d}"
 MIGRATIONS_DIR = Path(__file__).resolve().parent / "migrations"
 # Alembic's revision table. Not its default alembic_version: another application using Alembic
@@ -570,7 +627,8 @@ def read_worklist(engine: Engine, run_ids) -> pd.DataFrame:
     return queue_order(normalise_items(_frame(rows, ITEM_COLUMNS)))
 
 
-REVIEW_COLUMNS = ["item_id", "reviewed_at", "reviewer_role", "outcome", "note", "recorded_via"]
+REVIEW_COLUMNS = ["item_id", "reviewed_at", "reviewer_role", "outcome", "note", "recorded_via",
+                  "rule_version_at_review", "tier_at_review"]
 
 
 def read_reviews(engine: Engine, item_ids) -> pd.DataFrame:
@@ -618,16 +676,26 @@ def _rerank(conn: Connection) -> None:
                  .values(rank=ordered.c.rn))
 
 
-def upsert_items(engine: Engine, items: pd.DataFrame) -> dict:
+def upsert_items(engine: Engine, items: pd.DataFrame, history: pd.DataFrame | None = None) -> dict:
     """Insert or update items on item_id, in one transaction, then re-rank the whole table.
 
     Rows whose content (COMPARED_COLUMNS) equals the stored row are left alone, so running the
     same window twice gives the identical table. A stored closed or explained item is not
     reopened unless the incoming one is more severe (worklist.apply_reopen_rule); then it reopens
-    with the reason. first_flagged_at is never overwritten. Returns counts:
-    inserted, updated, reopened, unchanged."""
+    with the reason, and a closed item that stays closed keeps the finding that was reviewed
+    (its rule_version included). first_flagged_at is never overwritten.
+
+    history: the run's findings as finding_history rows (worklist.history_rows), appended in the
+    same transaction, after the items they point to, so that a crash leaves both or neither. A
+    row already there (same run_id, screen, ecg_id, rule_version) is skipped, never rewritten.
+    Returns counts: inserted, updated, reopened, unchanged (items) and, with history, history
+    (finding_history rows added)."""
     counts = {"inserted": 0, "updated": 0, "reopened": 0, "unchanged": 0}
+    if history is not None:
+        counts["history"] = 0
     if items.empty:
+        if history is not None and len(history):
+            raise ValueError("finding_history: rows given without the items they fold into")
         return counts
     incoming = normalise_items(items)
     if incoming["item_id"].duplicated().any():
@@ -657,7 +725,33 @@ def upsert_items(engine: Engine, items: pd.DataFrame) -> dict:
             for i in range(0, len(rows), CHUNK):
                 conn.execute(stmt, rows[i:i + CHUNK])
             _rerank(conn)
+        if history is not None and len(history):
+            counts["history"] = _append_history(conn, engine.dialect.name, history)
     return counts
+
+
+def _append_history(conn: Connection, dialect: str, history: pd.DataFrame) -> int:
+    """Insert finding_history rows, skipping those already stored (uq_finding_history_entry);
+    returns the rows added. The message of a bad batch names columns and counts only."""
+    h = finding_history
+    missing = [c for c in HISTORY_COLUMNS if c not in history.columns]
+    if missing:
+        raise ValueError(f"finding_history: rows lack columns: {', '.join(missing)}")
+    unnamed = int(history["rule_version"].isna().sum())
+    if unnamed:
+        raise ValueError(f"finding_history: {unnamed} row(s) without rule_version")
+    run_ids = sorted(set(history["run_id"].astype(str)))
+
+    def stored() -> int:
+        return conn.execute(select(func.count()).select_from(h).where(h.c.run_id.in_(run_ids))).scalar()
+
+    before = stored()
+    make = {"postgresql": postgresql.insert, "sqlite": sqlite.insert}[dialect]
+    stmt = make(h).on_conflict_do_nothing(index_elements=[h.c.run_id, h.c.screen, h.c.ecg_id, h.c.rule_version])
+    rows = _records(history[HISTORY_COLUMNS])
+    for i in range(0, len(rows), CHUNK):
+        conn.execute(stmt, rows[i:i + CHUNK])
+    return stored() - before
 
 
 # ---------------------------------------------------------------------------------------------
@@ -674,16 +768,21 @@ def _apply_reviews(conn: Connection, new: pd.DataFrame, recorded_via: str) -> in
     """Insert review rows and close their items: an item is closed by its latest review, unless
     it was reopened after that review was made. Returns rows inserted."""
     t, r = worklist_item, review
-    rows = _records(new[["item_id", "reviewed_at", "reviewer_role", "outcome", "note"]].assign(recorded_via=recorded_via))
-    conn.execute(insert(r), rows)
     ids = sorted(new["item_id"].unique())
+    items = _frame(conn.execute(select(t.c.item_id, t.c.status, t.c.last_updated_at, t.c.rule_version, t.c.tier)
+                                .where(t.c.item_id.in_(ids)).with_for_update()).all(),
+                   ["item_id", "status", "last_updated_at", "rule_version", "tier"])
+    # What the reviewer saw: the item's rule version and tier as stored when the review is recorded.
+    seen = items.set_index("item_id")
+    rows = _records(new[["item_id", "reviewed_at", "reviewer_role", "outcome", "note"]].assign(
+        recorded_via=recorded_via, rule_version_at_review=new["item_id"].map(seen["rule_version"]),
+        tier_at_review=new["item_id"].map(seen["tier"])))
+    conn.execute(insert(r), rows)
     latest = _frame(conn.execute(
         select(r.c.item_id, r.c.reviewed_at, r.c.outcome, r.c.review_id).where(r.c.item_id.in_(ids))).all(),
         ["item_id", "reviewed_at", "outcome", "review_id"])
     latest = latest.sort_values(["item_id", "reviewed_at", "review_id"]).drop_duplicates("item_id", keep="last")
-    items = _frame(conn.execute(select(t.c.item_id, t.c.status, t.c.last_updated_at)
-                                .where(t.c.item_id.in_(ids)).with_for_update()).all(),
-                   ["item_id", "status", "last_updated_at"])
+    items = items[["item_id", "status", "last_updated_at"]]
     m = latest.merge(items, on="item_id")
     close = ~(m["status"].eq(STATUS_REOPENED) & (m["reviewed_at"] < m["last_updated_at"]))
     m = m[close]
@@ -742,6 +841,42 @@ def record_review(engine: Engine, item_id: str, outcome: str, role: str, note: s
         if _duplicates(conn, one).iloc[0]:
             return False
         _apply_reviews(conn, one, recorded_via)
+    return True
+
+
+def record_missed_case(engine: Engine, patient_id: str, ecg_id: str, screen: str, role: str,
+                       note: str | None = None, recorded_at=None) -> bool:
+    """Record a missed case: an ECG of `patient_id` that `screen` should have flagged and did
+    not, noted by a reviewer in `role` at `recorded_at` (tz-aware; the CLI passes the time of
+    entry). Returns False when that ECG is already recorded as missed by that screen. Raises
+    ValueError (naming the field, never its value) for an unknown screen, a missing patient,
+    ECG or role, text over its documented length or holding a NUL byte, or a naive time."""
+    from cardiosieve.screens import SCREENS
+
+    if screen not in SCREENS:
+        raise ValueError(f"missed case: unknown screen (known: {', '.join(SCREENS)})")
+    fields = {"patient": patient_id, "ECG id": ecg_id, "reviewer role": role}
+    for name, value in fields.items():
+        if value is None or not str(value).strip():
+            raise ValueError(f"missed case: {name} is required")
+    text = {"reviewer role": (str(role).strip(), ROLE_MAX_CHARS), "note": (note or "", NOTE_MAX_CHARS)}
+    for name, (value, limit) in text.items():
+        if len(value) > limit:
+            raise ValueError(f"missed case: {name} longer than {limit} characters")
+        if "\x00" in value:
+            raise ValueError(f"missed case: {name} holds a NUL byte")
+    when = pd.Timestamp(recorded_at)
+    if when.tzinfo is None:
+        raise ValueError("missed case: the time must carry a UTC offset")
+    row = {"patient_id": str(patient_id).strip(), "ecg_id": str(ecg_id).strip(), "screen": screen,
+           "recorded_at": when.tz_convert("UTC"), "reviewer_role": str(role).strip(), "note": note or None}
+    m = missed_case
+    with _write_transaction(engine) as conn:
+        known = conn.execute(select(func.count()).select_from(m).where(
+            m.c.ecg_id == row["ecg_id"], m.c.screen == screen)).scalar()
+        if known:
+            return False
+        conn.execute(insert(m), [row])
     return True
 
 
@@ -848,35 +983,66 @@ def wilson_interval(k, n, confidence: float = WILSON_CONFIDENCE):
 
 YIELD_COLUMNS = ["screen", "tier", "items", "reviewed", OUTCOME_FINDING_REAL, OUTCOME_ALREADY_KNOWN,
                  OUTCOME_FINDING_NOT_REAL, OUTCOME_DATA_PROBLEM, "ppv", "ppv_low", "ppv_high",
-                 "median_hours_to_review"]
+                 "median_hours_to_review", "missed_cases_of_screen"]
+YIELD_GROUPS = ("tier", "rule_version")   # the second grouping of a yield table, after screen
 
 
-def yield_table(engine: Engine, since=None) -> pd.DataFrame:
-    """Per screen and tier: items flagged (first_flagged_at >= since), items reviewed, each item's
+def _utc_bound(value) -> dt.datetime:
+    when = pd.Timestamp(value)
+    when = when.tz_localize("UTC") if when.tzinfo is None else when.tz_convert("UTC")
+    return when.to_pydatetime()
+
+
+def yield_table(engine: Engine, since=None, until=None, by: str = "tier") -> pd.DataFrame:
+    """Per screen and tier (or rule version): items flagged in [since, until) (first_flagged_at;
+    either bound may be None; a date without a time is midnight UTC), items reviewed, each item's
     latest outcome counted, PPV = (finding_real + already_known) / reviewed with its 95 % Wilson
-    interval, and the median hours from first flag to first review."""
+    interval, and the median hours from first flag to first review. missed_cases_of_screen: the
+    missed cases recorded for the screen in the same window (recorded_at), the same number on
+    each of the screen's rows (it is the screen's, not the row's: do not add it up over rows); a
+    screen with missed cases and no item flagged gets one row of its own, without tier.
+
+    by="tier": the item's tier as stored. by="rule_version": the rule version an item was
+    reviewed under (rule_version_at_review of its latest review, the one whose outcome counts),
+    and for an item not reviewed yet its current rule_version; a column `rule_version` then
+    stands where `tier` does."""
+    if by not in YIELD_GROUPS:
+        raise ValueError(f"yield: unknown grouping {by!r} (known: {', '.join(YIELD_GROUPS)})")
     t, r = worklist_item, review
-    q = select(t.c.item_id, t.c.screen, t.c.tier, t.c.first_flagged_at)
+    q = select(t.c.item_id, t.c.screen, t.c.tier, t.c.rule_version, t.c.first_flagged_at)
     if since is not None:
-        since = pd.Timestamp(since)
-        since = since.tz_localize("UTC") if since.tzinfo is None else since.tz_convert("UTC")
-        q = q.where(t.c.first_flagged_at >= since.to_pydatetime())
+        q = q.where(t.c.first_flagged_at >= _utc_bound(since))
+    if until is not None:
+        q = q.where(t.c.first_flagged_at < _utc_bound(until))
     with engine.connect() as conn:
-        items = _frame(conn.execute(q).all(), ["item_id", "screen", "tier", "first_flagged_at"])
-        reviews = _frame(conn.execute(select(r.c.item_id, r.c.reviewed_at, r.c.outcome, r.c.review_id)).all(),
-                         ["item_id", "reviewed_at", "outcome", "review_id"])
-    if items.empty:
-        return pd.DataFrame({c: pd.Series(dtype=float) for c in YIELD_COLUMNS})
+        items = _frame(conn.execute(q).all(), ["item_id", "screen", "tier", "rule_version", "first_flagged_at"])
+        reviews = _frame(conn.execute(select(r.c.item_id, r.c.reviewed_at, r.c.outcome, r.c.review_id,
+                                             r.c.rule_version_at_review)).all(),
+                         ["item_id", "reviewed_at", "outcome", "review_id", "rule_version_at_review"])
+        m = missed_case
+        mq = select(m.c.screen, func.count()).group_by(m.c.screen)
+        if since is not None:
+            mq = mq.where(m.c.recorded_at >= _utc_bound(since))
+        if until is not None:
+            mq = mq.where(m.c.recorded_at < _utc_bound(until))
+        missed = dict(conn.execute(mq).all())
+    columns = YIELD_COLUMNS if by == "tier" else [by if c == "tier" else c for c in YIELD_COLUMNS]
+    if items.empty and not missed:
+        return pd.DataFrame({c: pd.Series(dtype="str" if c in ("screen", "rule_version") else float)
+                             for c in columns})
     items["first_flagged_at"] = pd.to_datetime(items["first_flagged_at"], utc=True)
     reviews["reviewed_at"] = pd.to_datetime(reviews["reviewed_at"], utc=True)
     reviews = reviews.sort_values(["item_id", "reviewed_at", "review_id"])
-    latest = reviews.drop_duplicates("item_id", keep="last")[["item_id", "outcome"]]
+    latest = reviews.drop_duplicates("item_id", keep="last")[["item_id", "outcome", "rule_version_at_review"]]
     first = reviews.drop_duplicates("item_id", keep="first")[["item_id", "reviewed_at"]]
     items = items.merge(latest, on="item_id", how="left").merge(first, on="item_id", how="left")
     items["hours"] = (items["reviewed_at"] - items["first_flagged_at"]) / pd.Timedelta(hours=1)
+    if by == "rule_version":
+        reviewed_under = items["rule_version_at_review"].where(items["outcome"].notna())
+        items["rule_version"] = reviewed_under.fillna(items["rule_version"]).fillna("").astype("str")
     for o in OUTCOMES:
         items[o] = items["outcome"].eq(o).astype(int)
-    g = items.groupby(["screen", "tier"], sort=True)
+    g = items.groupby(["screen", by], sort=True)
     out = pd.DataFrame({"items": g.size(), "reviewed": g["outcome"].count(),
                         **{o: g[o].sum() for o in OUTCOMES},
                         "median_hours_to_review": g["hours"].median()}).reset_index()
@@ -884,8 +1050,17 @@ def yield_table(engine: Engine, since=None) -> pd.DataFrame:
     with np.errstate(invalid="ignore", divide="ignore"):
         out["ppv"] = np.where(out["reviewed"] > 0, positives / out["reviewed"].where(out["reviewed"] > 0), np.nan)
     out["ppv_low"], out["ppv_high"] = wilson_interval(positives, out["reviewed"])
-    out["tier"] = out["tier"].astype("int64")
-    return out[YIELD_COLUMNS]
+    if by == "tier":
+        out["tier"] = out["tier"].astype("int64")
+    alone = sorted(set(missed) - set(out["screen"]))
+    if alone:   # missed cases of a screen that flagged nothing in the window: a row of their own
+        extra = pd.DataFrame({"screen": alone, "items": 0, "reviewed": 0, **{o: 0 for o in OUTCOMES}})
+        out = pd.concat([out, extra], ignore_index=True).sort_values(["screen", by], kind="mergesort")
+        out = out.reset_index(drop=True)
+        if by == "tier":
+            out["tier"] = out["tier"].astype("Int64")
+    out["missed_cases_of_screen"] = out["screen"].map(missed).fillna(0).astype("int64")
+    return out[columns]
 
 
 # ---------------------------------------------------------------------------------------------

@@ -55,6 +55,12 @@ CONTRACT_COLUMNS = ["item_id", "rank", "tier", "screen", "patient_id", "ecg_id",
 ITEM_COLUMNS = CONTRACT_COLUMNS + ["status", "last_updated_at", "status_reason", "episode_start",
                                    "episode_end", "other_ecg_ids", "score_parts"]
 TIMESTAMP_COLUMNS = ["ecg_at", "first_flagged_at", "last_updated_at", "episode_start", "episode_end"]
+# An item's finding: what a reviewer reviewed, kept as it was while the item stays closed.
+REVIEWED_FINDING_COLUMNS = ["tier", "ecg_id", "ecg_at", "summary", "evidence", "caveats", "territories",
+                            "rule_version", "score_parts"]
+# finding_history rows (pipeline/store.py): each finding of a run with the item it folded into.
+HISTORY_COLUMNS = ["run_id", "run_end_at", "item_id", "screen", "ecg_id", "patient_id", "acquired_at", "tier",
+                   "rule_version", "summary", "evidence", "caveats", "territories", "score_parts"]
 
 # ---------------------------------------------------------------------------------------------
 # Score (docs/prioritisation.md gives the formula and a worked example). Local choices.
@@ -235,12 +241,37 @@ def apply_reopen_rule(items: pd.DataFrame, stored: pd.DataFrame | None) -> pd.Da
     keep = locked & ~more
     df["status"] = df["status"].mask(keep, m["old_status"]).mask(reopen, STATUS_REOPENED)
     df["status_reason"] = df["status_reason"].astype("str").mask(keep, m["old_reason"])
+    _keep_reviewed_finding(df, stored, keep & m["old_status"].eq(STATUS_CLOSED))
     for i in df.index[reopen]:   # the few reopened items get their reason written out
         df.loc[i, "status_reason"] = (
             f"reopened: a more severe finding (tier {int(new_key.loc[i, 'tier'])}, severity "
             f"{new_key.loc[i, 'severity']:.2f}) followed the {m.loc[i, 'old_status']} item "
             f"(tier {int(m.loc[i, 'old_tier'])}, severity {m.loc[i, 'old_severity']:.2f})")
     return df
+
+
+def _keep_reviewed_finding(df: pd.DataFrame, stored: pd.DataFrame, kept: pd.Series) -> None:
+    """In place: the rows `kept` (closed items that stay closed) get back the finding the
+    reviewer saw (REVIEWED_FINDING_COLUMNS, from `stored`): a rerun under other rules, or a
+    milder finding joining the episode, never rewrites what was reviewed, its rule_version
+    included. The episode still grows (episode_start, episode_end, other_ecg_ids); the new
+    findings are in the store's finding_history. Columns `stored` lacks are left as they are."""
+    if not kept.any():
+        return
+    cols = [c for c in REVIEWED_FINDING_COLUMNS if c in stored.columns and c in df.columns]
+    old = stored.drop_duplicates("item_id").set_index("item_id")
+    ids = df.loc[kept, "item_id"]
+    if "ecg_id" in cols and "other_ecg_ids" in df.columns:
+        for i in ids.index:   # the few closed items a night touches: the primary ECG moves back
+            was, now = str(old.loc[ids[i], "ecg_id"]), str(df.loc[i, "ecg_id"])
+            if was != now:
+                others = (set(loads_list(df.loc[i, "other_ecg_ids"])) | {now}) - {was}
+                df.loc[i, "other_ecg_ids"] = json.dumps(sorted(others))
+    for c in cols:
+        restored = ids.map(old[c])
+        if c in TIMESTAMP_COLUMNS:
+            restored = _utc(restored)
+        df.loc[kept, c] = restored
 
 
 # ---------------------------------------------------------------------------------------------
@@ -379,9 +410,38 @@ def _episodes(new: pd.DataFrame, old: pd.DataFrame, episode_h: float) -> pd.Data
     return joined.set_index("row")["item_id"].reindex(new.index)
 
 
+def fold_findings(findings: pd.DataFrame, aligned: pd.DataFrame | None, existing: pd.DataFrame | None,
+                  episode_h: float = EPISODE_H) -> pd.DataFrame:
+    """The findings (FINDING_COLUMNS) as build_items folds them: acquired_at in UTC, the ECG's
+    care location added to score_parts (from `aligned`, so that the score can be recomputed
+    from a stored row alone), and `item_id`, the item each folds into (a stored item of
+    `existing` within episode_h of the same patient and screen, else a new one)."""
+    missing = [c for c in FINDING_COLUMNS if c not in findings.columns]
+    if missing:
+        raise ValueError(f"findings lack columns: {', '.join(missing)}")
+    ex = normalise_items(existing) if existing is not None and len(existing) else empty_items()
+    f = findings[FINDING_COLUMNS].copy()
+    f["acquired_at"] = _utc(f["acquired_at"]) if len(f) else pd.Series(dtype="datetime64[us, UTC]")
+    loc = pd.Series(np.nan, index=f.index, dtype="str")
+    if aligned is not None and "location" in aligned.columns and len(f):
+        loc = f["ecg_id"].map(aligned.drop_duplicates("ecg_id").set_index("ecg_id")["location"]).astype("str")
+    f["score_parts"] = [json.dumps(plain({**loads_object(p), "location": l}), sort_keys=True)
+                        for p, l in zip(f["score_parts"], loc)]
+    f["item_id"] = _episodes(f, ex, episode_h) if len(f) else pd.Series(dtype="str")
+    return f
+
+
+def history_rows(folded: pd.DataFrame, run_id: str, now: pd.Timestamp) -> pd.DataFrame:
+    """finding_history rows (HISTORY_COLUMNS) of a run's folded findings (fold_findings): each
+    finding with its item, the run's id and the run's end."""
+    out = folded.assign(run_id=run_id, run_end_at=_utc_ts(now))
+    return out[HISTORY_COLUMNS].reset_index(drop=True)
+
+
 def build_items(findings: pd.DataFrame, aligned: pd.DataFrame | None, existing: pd.DataFrame | None,
                 run_id: str, now: pd.Timestamp, episode_h: float = EPISODE_H, *,
-                explainers=None, location_weights=LOCATION_WEIGHTS) -> pd.DataFrame:
+                explainers=None, location_weights=LOCATION_WEIGHTS, backfill: bool = False,
+                folded: pd.DataFrame | None = None) -> pd.DataFrame:
     """Worklist items from a run's findings, scored; unranked (rank NA): the store ranks them
     (store.upsert_items, in the order of rank_items), and rank_items ranks them in pandas.
 
@@ -393,30 +453,23 @@ def build_items(findings: pd.DataFrame, aligned: pd.DataFrame | None, existing: 
               and stored active items can be explained away by tonight's results. None = none.
     run_id    written on every returned item (store.upsert_items keeps the stored run_id of items
               that did not change).
-    now       the run's end timestamp (tz-aware), never the clock: first_flagged_at of new items,
-              last_updated_at, and the reference for recency.
+    now       the run's end timestamp (tz-aware), never the clock: first_flagged_at of new items
+              (unless `backfill`), last_updated_at, and the reference for recency.
+    backfill  the run is a backfill (pipeline/run.py: several chunks, or more than a day): a new
+              item's first_flagged_at is the acquisition time of its earliest ECG in this run,
+              when the finding would have become visible to a nightly run, not the chunk's end
+              (docs/prioritisation.md, "When an item was first flagged").
+    folded    `findings` already through fold_findings (with the same existing and episode_h),
+              so that the caller can keep them (history_rows) without folding twice.
     Returns the items that are new or changed tonight (ITEM_COLUMNS), with their score: each one
     keeps its episode's most severe ECG (tier, then severity, then the earlier ECG) and lists the
     episode's other ECGs in other_ecg_ids (JSON list). Nothing is deleted."""
-    missing = [c for c in FINDING_COLUMNS if c not in findings.columns]
-    if missing:
-        raise ValueError(f"findings lack columns: {', '.join(missing)}")
     now = _utc_ts(now)
     ex = normalise_items(existing) if existing is not None and len(existing) else empty_items()
-    f = findings[FINDING_COLUMNS].copy()
-    f["acquired_at"] = _utc(f["acquired_at"]) if len(f) else pd.Series(dtype="datetime64[us, UTC]")
-
-    # Care location of each ECG goes into score_parts, so the score can be recomputed later
-    # from the stored row alone.
-    loc = pd.Series(np.nan, index=f.index, dtype="str")
-    if aligned is not None and "location" in aligned.columns and len(f):
-        loc = f["ecg_id"].map(aligned.drop_duplicates("ecg_id").set_index("ecg_id")["location"]).astype("str")
-    f["score_parts"] = [json.dumps(plain({**loads_object(p), "location": l}), sort_keys=True)
-                        for p, l in zip(f["score_parts"], loc)]
+    f = fold_findings(findings, aligned, ex, episode_h) if folded is None else folded.copy()
 
     items = empty_items()
     if len(f):
-        f["item_id"] = _episodes(f, ex, episode_h)
         touched = ex[ex["item_id"].isin(f["item_id"])]
         cand_old = pd.DataFrame({"ecg_id": touched["ecg_id"], "patient_id": touched["patient_id"],
                                  "acquired_at": touched["ecg_at"], "screen": touched["screen"],
@@ -446,7 +499,11 @@ def build_items(findings: pd.DataFrame, aligned: pd.DataFrame | None, existing: 
                                        "summary", "evidence", "caveats", "territories", "rule_version",
                                        "score_parts"]].rename(columns={"acquired_at": "ecg_at"})
         items = items.join(prev[["first_flagged_at", "status", "status_reason"]], on="item_id")
-        items["first_flagged_at"] = items["first_flagged_at"].fillna(now)
+        # A new item was first flagged at the run's end (a nightly run shows it then); in a
+        # backfill, when its earliest ECG of this run was acquired.
+        seen = cand[cand["_old"].eq(0)].groupby("item_id")["acquired_at"].min() if backfill else None
+        items["first_flagged_at"] = items["first_flagged_at"].fillna(
+            items["item_id"].map(seen) if backfill else now)
         items["status"] = items["status"].fillna(STATUS_OPEN)
         items["rank"], items["score"] = pd.NA, np.nan
         items["run_id"], items["last_updated_at"] = run_id, now

@@ -173,11 +173,11 @@ def test_yield_prints_a_table_per_screen_and_tier(out, capsys):
     code, text, _ = run(capsys, "yield", "--out", out)
     rows = [line.split() for line in text.splitlines()]
     assert code == 0 and rows[0] == ["screen", "tier", "items", "reviewed", "finding_real", "already_known", "ppv",
-                                     "ppv_95ci", "median_h_to_review"]
+                                     "ppv_95ci", "median_h_to_review", "missed_of_screen"]
     assert "confirmed" not in text
     # tier 1: 1 item, reviewed as a real finding 2 h after the flag; Wilson 1/1 = 0.21 to 1.00
     # (z^2/(1+z^2) = 0.2065, by hand).
-    assert rows[1] == ["hyperkalemia", "1", "1", "1", "1", "0", "1.00", "0.21-1.00", "2.0"]
+    assert rows[1] == ["hyperkalemia", "1", "1", "1", "1", "0", "1.00", "0.21-1.00", "2.0", "0"]
     assert rows[2][:4] == ["hyperkalemia", "2", "2", "0"] and rows[2][6] == "-"
     assert "pat-" not in text
 

@@ -10,7 +10,7 @@ import sys
 
 import pandas as pd
 import pytest
-from sqlalchemy import create_engine, event, insert, inspect
+from sqlalchemy import create_engine, event, func, insert, inspect, select
 from sqlalchemy.engine import Engine
 from sqlalchemy.exc import IntegrityError
 
@@ -144,12 +144,17 @@ def describe(url):
     return tables
 
 
+# review's columns since version 1 (schema 4 added two, checked by the test of revision 0004).
+V1_REVIEW_COLUMNS = ["review_id", "item_id", "reviewed_at", "reviewer_role", "outcome", "note", "recorded_via"]
+
+
 def snapshot(engine):
     """Everything a migration may touch: both tables' rows, the version row, the revision row,
     the outcome check and review's indexes and unique constraints; on SQLite every table's and
     index's CREATE statement but the revision table's."""
     with engine.connect() as conn:
-        reviews = pd.DataFrame(conn.execute(review.select().order_by(review.c.review_id)).mappings().all())
+        reviews = pd.DataFrame(conn.execute(select(*[review.c[c] for c in V1_REVIEW_COLUMNS])
+                                            .order_by(review.c.review_id)).mappings().all())
         have = inspect(conn)
         version = (conn.execute(cardiosieve_schema.select()).all()
                    if have.has_table("cardiosieve_schema") else None)
@@ -396,7 +401,49 @@ def test_revision_3_ranks_the_queue_only_and_indexes_status_and_run_id(empty_url
     by_ecg = after.set_index("ecg_id")["rank"]
     assert (by_ecg["e5"], by_ecg["e6"], sorted(by_ecg[["e2", "e4"]])) == (1, 4, [2, 3])   # by tier
     assert by_ecg[["e1", "e3"]].isna().all()
-    assert {"ix_worklist_item_status", "ix_worklist_item_run_id"} <= indexes and version == [(1, 3)]
+    assert {"ix_worklist_item_status", "ix_worklist_item_run_id"} <= indexes and version == [(1, SCHEMA_VERSION)]
+
+
+def test_revision_4_backfills_reviews_from_their_items_and_starts_an_empty_findings_history(empty_url):
+    """From 0003 to 0004: every review is kept as it was and gets its item's current rule
+    version and tier (the migration's documented backfill), finding_history and missed_case
+    are made empty,
+    and the version row says 4."""
+    old = build_store_at(empty_url, "0003")
+    rows = [finding("e1", "p1", "2026-03-01 20:00", tier=2),
+            finding("e2", "p2", "2026-03-01 21:00", screen="long_qt", tier=1, severity=0.8),
+            finding("e3", "p3", "2026-03-01 22:00", tier=3)]
+    items, _ = night(old, rows)
+    ids = items.set_index("ecg_id")["item_id"]
+    with old.begin() as conn:   # a 0003 review row: the columns of that schema only
+        conn.execute(worklist_item.update().where(worklist_item.c.item_id == ids["e2"])
+                     .values(rule_version="long_qt/0.9.0+site.abc123"))
+        conn.execute(insert(review), [
+            {"item_id": ids[e], "reviewed_at": NIGHT1 + pd.Timedelta(hours=h), "reviewer_role": role,
+             "outcome": outcome, "note": None, "recorded_via": "cli"}
+            for e, h, role, outcome in [("e1", 5, "registrar", "finding_real"),
+                                        ("e2", 6, "registrar", "data_problem"),
+                                        ("e2", 7, "consultant", "finding_not_real")]])
+    before = snapshot(old)
+    old.dispose()
+
+    engine = open_store(empty_url)
+    after = snapshot(engine)
+    with engine.connect() as conn:
+        backfilled = conn.execute(select(review.c.review_id, review.c.rule_version_at_review, review.c.tier_at_review)
+                                  .order_by(review.c.review_id)).all()
+        history = conn.execute(select(func.count()).select_from(store.finding_history)).scalar()
+        history += conn.execute(select(func.count()).select_from(store.missed_case)).scalar()
+    engine.dispose()
+    assert_same(after, before, skip=("revision", "version", "ddl"))   # items and reviews kept
+    first = int(before["reviews"]["review_id"].min())
+    # By hand from the rows above: e1's item is hyperkalemia/1.0.0 at tier 2; e2's was set to
+    # the override version above, at tier 1 (both of its reviews).
+    assert [tuple(r) for r in backfilled] == [(first, "hyperkalemia/1.0.0", 2),
+                                               (first + 1, "long_qt/0.9.0+site.abc123", 1),
+                                               (first + 2, "long_qt/0.9.0+site.abc123", 1)]
+    assert history == 0
+    assert after["version"] == [(1, 4)] and after["revision"] == [("0004",)]
 
 
 # --- new stores, and the migrated schema against store.metadata ----------------------------------

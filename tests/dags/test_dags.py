@@ -345,7 +345,8 @@ def test_rerun_with_explicit_interval_and_a_connection_reproduces_the_cli_workli
     pd.testing.assert_frame_equal(worklist, pd.read_parquet(tmp_path / "cli" / "worklist.parquet"))
     summary = json.loads((out / "run_summary.json").read_text())
     n = reference["worklist"]["items_tonight"]
-    assert summary["worklist"]["db_counts"] == {"inserted": 0, "updated": 0, "reopened": 0, "unchanged": n}
+    assert summary["worklist"]["db_counts"] == {"inserted": 0, "updated": 0, "reopened": 0, "unchanged": n,
+                                                "history": 0}
     # Same summary as the CLI's, but for where the files went.
     for key in ("interval", "config", "tables", "rejects_by_reason", "findings", "aligned", "caution"):
         assert summary[key] == json.loads(json.dumps(reference[key], default=str)), key
