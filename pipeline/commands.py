@@ -90,6 +90,20 @@ def register(subparsers) -> None:
                    help="table (default; text is the same), json or csv")
     p.set_defaults(handler=handle_yield, func=handle_yield)
 
+    p = subparsers.add_parser("audit", help="review timeliness per screen, tier and month: late, overdue, "
+                                            "median and 90th-percentile hours to review",
+                              description="For quality improvement: of the items first flagged in [--since, "
+                                          "--until), how many were reviewed, reviewed later than the site's "
+                                          "target for their tier ([audit] in --config), or not reviewed and "
+                                          "overdue; hours from first flagged to first review. Counts only. "
+                                          "See docs/audit.md.")
+    add_store_options(p)
+    p.add_argument("--since", metavar="DATE", required=True, help="first day of the period (UTC), e.g. 2026-11-01")
+    p.add_argument("--until", metavar="DATE", help="end of the period, excluded (UTC; default: now)")
+    p.add_argument("--config", help="site configuration (TOML): its [audit] review targets per tier")
+    p.add_argument("--format", default="table", choices=("table", "json", "csv"))
+    p.set_defaults(handler=handle_audit, func=handle_audit)
+
     p = subparsers.add_parser("export", help="write the stored worklist as CSV for spreadsheets")
     add_store_options(p)
     p.add_argument("--format", default="csv", choices=["csv"], help="output format (csv)")
@@ -275,6 +289,59 @@ def handle_yield(args) -> int:
     window = (f" since {args.since}" if args.since else "") + (f" before {args.until}" if args.until else "")
     print(shown.to_string(index=False) if len(shown) else "no items flagged" + window)
     print(PPV_NOTE)
+    return EXIT_OK
+
+
+AUDIT_NOTE = ("late: reviewed after the target for its tier; overdue: not reviewed and past the target when "
+              "the audit ran; pending: not reviewed, still within it; hours from first flagged to the first "
+              "review (docs/audit.md)")
+
+
+def handle_audit(args) -> int:
+    import pandas as pd
+
+    from cardiosieve.pipeline.audit import review_timeliness
+    from cardiosieve.pipeline.config import load_settings
+    from cardiosieve.pipeline.store import read_items, read_reviews
+
+    url = _url(args)
+    if url is None:
+        return EXIT_BAD_INPUT
+    now = pd.Timestamp.now(tz="UTC")
+    try:
+        since = pd.Timestamp(args.since)
+        until = pd.Timestamp(args.until) if args.until else now
+    except ValueError:
+        return _fail("audit: --since/--until: not a date (ISO 8601, e.g. 2026-11-01)")
+    since = since.tz_localize("UTC") if since.tzinfo is None else since.tz_convert("UTC")
+    until = until.tz_localize("UTC") if until.tzinfo is None else until.tz_convert("UTC")
+    if until <= since:
+        return _fail("audit: the period is empty (--until is not after --since)")
+    targets = load_settings(args.config).review_target_h()
+    engine = _store(url)
+    try:
+        items = read_items(engine)
+        items = items[(items["first_flagged_at"] >= since) & (items["first_flagged_at"] < until)]
+        reviews = read_reviews(engine, items["item_id"])
+    finally:
+        engine.dispose()
+    table = review_timeliness(items, reviews, targets, as_of=now)
+    period = f"items first flagged in [{since:%Y-%m-%d %H:%M}, {until:%Y-%m-%d %H:%M}) UTC"
+    if args.format == "json":
+        from cardiosieve.pipeline.jsontext import plain
+        _print_json({"caution": CAUTION, "period": period, "note": AUDIT_NOTE, "targets_h": targets,
+                     "rows": plain(table.to_dict("records"))})
+        return EXIT_OK
+    if args.format == "csv":
+        table.to_csv(sys.stdout, index=False, lineterminator="\n")
+        return EXIT_OK
+    shown = table.copy()
+    for c in ("target_h", "median_h_to_review", "p90_h_to_review"):
+        shown[c] = ["-" if x != x else f"{x:.1f}" for x in shown[c]]
+    print(CAUTION)
+    print(period)
+    print(shown.to_string(index=False) if len(shown) else "no items flagged in the period")
+    print(AUDIT_NOTE)
     return EXIT_OK
 
 

@@ -40,13 +40,21 @@ DEFAULT_WINDOWS = {
     "episode_h": 72.0,           # findings of one screen and patient this close fold into one item
 }
 
-_SECTIONS = {"site", "columns", "units", "lab_codes", "analytes", "troponin", "drugs", "windows", "rules", "quality"}
+_SECTIONS = {"site", "columns", "units", "lab_codes", "analytes", "troponin", "drugs", "windows", "rules", "quality",
+             "audit"}
 
 # A missing feed (no ECG rows tonight; ECGs but no lab rows for their patients) stops the run by
 # default: findings would otherwise drop to lower tiers with exit 0. A site may lower it to a
 # warning. The lab check is critical only on nights with at least lab_feed_min_ecgs ECGs (a very
 # small night may truly have no labs; local choice).
 DEFAULT_QUALITY = {"missing_feed": "critical", "lab_feed_min_ecgs": 20.0}
+
+# How soon an item of each tier should be reviewed, in hours from when it was first flagged
+# (`cardiosieve audit`, pipeline/audit.py). Local choices, to be set by each site to its own
+# protocol: tier 1 within the hour, tier 2 within a shift, tier 3 within three days, tier 4
+# within a week.
+DEFAULT_AUDIT = {"review_target_h_tier_1": 1.0, "review_target_h_tier_2": 12.0, "review_target_h_tier_3": 72.0,
+                 "review_target_h_tier_4": 168.0}
 
 
 @dataclass(frozen=True)
@@ -70,6 +78,11 @@ class Settings:
     windows: dict[str, float] = field(default_factory=lambda: dict(DEFAULT_WINDOWS))
     rules: dict[str, dict] = field(default_factory=dict)               # screen -> threshold overrides
     quality: dict[str, object] = field(default_factory=lambda: dict(DEFAULT_QUALITY))
+    audit: dict[str, float] = field(default_factory=lambda: dict(DEFAULT_AUDIT))
+
+    def review_target_h(self) -> dict[int, float]:
+        """Tier -> hours within which its items should be reviewed ([audit])."""
+        return {int(k.rsplit("_", 1)[1]): v for k, v in self.audit.items()}
 
     def analyte_of_code(self) -> dict[str, str]:
         """LOINC code -> analyte name, troponin assays included."""
@@ -213,12 +226,15 @@ def settings_from_dict(raw: dict, source: str = "config") -> Settings:
         quality["missing_feed"] = quality_raw["missing_feed"]
     if "lab_feed_min_ecgs" in quality_raw:
         quality["lab_feed_min_ecgs"] = _number(quality_raw["lab_feed_min_ecgs"], source, "[quality] lab_feed_min_ecgs")
+    audit_raw = _table(raw, "audit", source, "[audit]")
+    _known_keys(audit_raw, set(DEFAULT_AUDIT), source, "[audit]")
+    audit = {**DEFAULT_AUDIT, **{k: _number(v, source, f"[audit] {k}", positive=True) for k, v in audit_raw.items()}}
 
     return Settings(source=source, site_name=str(site.get("name", "")), timezone=tz, columns=columns,
                     time_units=time_units, amplitude_unit=amplitude,
                     lab_codes={str(k): v for k, v in lab_codes.items()},
                     analytes=analytes, troponin=tuple(troponin), drugs=drugs, windows=windows,
-                    rules=dict(rules), quality=quality)
+                    rules=dict(rules), quality=quality, audit=audit)
 
 
 def _check_rules(rules: dict, source: str) -> None:

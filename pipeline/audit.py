@@ -1,0 +1,81 @@
+"""Review timeliness for quality-improvement analysts: were the flagged items reviewed, and in time?
+
+What it does
+    review_timeliness   per screen, tier and month first flagged: items, reviewed, reviewed
+                        late, never reviewed and overdue, never reviewed and not yet due,
+                        explained away unreviewed, and the median and 90th percentile of hours
+                        from first flagged to first review.
+
+Definitions (docs/audit.md gives them with a worked example)
+    time to review   hours from the item's first_flagged_at to its first recorded review (the
+                     earliest reviewed_at; a later review changes the outcome, not when the item
+                     was first looked at).
+    target           the site's [audit] review_target_h_tier_<n> for the item's tier (the tier
+                     at its first review when recorded, else its current tier): a local choice.
+    late             reviewed, more than the target after it was first flagged.
+    overdue          not reviewed, and more than the target has passed between first flagged and
+                     `as_of` (when the audit runs): an unreviewed item still within its target is
+                     pending, not missed.
+    explained        not reviewed and explained away by later data (status explained): counted
+                     on their own, neither overdue nor pending.
+Percentiles are linear interpolation between the order statistics (pandas' quantile, the
+"linear" method; Hyndman and Fan type 7), the usual default of statistics software.
+
+Pure: frames in, a frame out; no files, no connections, no clock (the caller passes `as_of`).
+Counts and hours only: no item or patient identifier in the result.
+"""
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+TIMELINESS_COLUMNS = ["screen", "tier", "month", "items", "reviewed", "reviewed_late", "overdue", "pending",
+                      "explained_unreviewed", "target_h", "median_h_to_review", "p90_h_to_review"]
+
+
+def first_reviews(reviews: pd.DataFrame) -> pd.DataFrame:
+    """Each item's first recorded review (REVIEW_COLUMNS of pipeline/store.py), indexed by item_id."""
+    if reviews.empty:
+        return pd.DataFrame(columns=["reviewed_at", "tier_at_review"], index=pd.Index([], name="item_id"))
+    r = reviews.sort_values(["item_id", "reviewed_at"], kind="mergesort")
+    return r.drop_duplicates("item_id", keep="first").set_index("item_id")
+
+
+def review_timeliness(items: pd.DataFrame, reviews: pd.DataFrame, targets_h: dict[int, float],
+                      as_of: pd.Timestamp) -> pd.DataFrame:
+    """TIMELINESS_COLUMNS, one row per screen, tier and month (YYYY-MM of first_flagged_at in
+    UTC) that has items; `items` are stored items (ITEM_COLUMNS), `reviews` their reviews,
+    `targets_h` tier -> hours ([audit] of the site config), `as_of` the audit's instant (UTC)."""
+    if items.empty:
+        return pd.DataFrame(columns=TIMELINESS_COLUMNS)
+    as_of = pd.Timestamp(as_of).tz_convert("UTC")
+    first = first_reviews(reviews)
+    flagged = pd.to_datetime(items["first_flagged_at"], utc=True)
+    reviewed_at = pd.to_datetime(items["item_id"].map(first["reviewed_at"]), utc=True)
+    tier_seen = items["item_id"].map(first["tier_at_review"]) if "tier_at_review" in first.columns else None
+    tier = pd.to_numeric(tier_seen, errors="coerce").fillna(items["tier"]) if tier_seen is not None \
+        else items["tier"]
+    tier = tier.astype(int)
+    target = tier.map(targets_h).astype(float)
+    hours = (reviewed_at - flagged) / pd.Timedelta(hours=1)
+    is_reviewed = reviewed_at.notna()
+    explained = ~is_reviewed & items["status"].eq("explained")
+    waited = (as_of - flagged) / pd.Timedelta(hours=1)
+    df = pd.DataFrame({
+        "screen": items["screen"].astype(str), "tier": tier,
+        "month": flagged.dt.tz_convert("UTC").dt.strftime("%Y-%m"),
+        "reviewed": is_reviewed, "reviewed_late": is_reviewed & (hours > target),
+        "overdue": ~is_reviewed & ~explained & (waited > target),
+        "pending": ~is_reviewed & ~explained & (waited <= target),
+        "explained_unreviewed": explained, "target_h": target,
+        "hours": hours.where(is_reviewed)})
+    g = df.groupby(["screen", "tier", "month"], sort=True)
+    out = g.agg(items=("reviewed", "size"), reviewed=("reviewed", "sum"), reviewed_late=("reviewed_late", "sum"),
+                overdue=("overdue", "sum"), pending=("pending", "sum"),
+                explained_unreviewed=("explained_unreviewed", "sum"), target_h=("target_h", "first"),
+                median_h_to_review=("hours", "median"),
+                p90_h_to_review=("hours", lambda h: h.quantile(0.9) if h.notna().any() else np.nan))
+    out = out.reset_index()
+    for c in ("items", "reviewed", "reviewed_late", "overdue", "pending", "explained_unreviewed"):
+        out[c] = out[c].astype(int)
+    return out[TIMELINESS_COLUMNS]
