@@ -277,14 +277,12 @@ def handle_yield(args) -> int:
         return EXIT_OK
     import pandas as pd
 
-    def num(x, fmt):
-        return "-" if x != x else format(x, fmt)   # NaN shows as "-"
     shown = pd.DataFrame({
         "screen": table["screen"], args.by: table[args.by], "items": table["items"], "reviewed": table["reviewed"],
         "finding_real": table["finding_real"], "already_known": table["already_known"],
-        "ppv": [num(x, ".2f") for x in table["ppv"]],
+        "ppv": [_num(x, ".2f") for x in table["ppv"]],
         "ppv_95ci": ["-" if lo != lo else f"{lo:.2f}-{hi:.2f}" for lo, hi in zip(table["ppv_low"], table["ppv_high"])],
-        "median_h_to_review": [num(x, ".1f") for x in table["median_hours_to_review"]],
+        "median_h_to_review": [_num(x, ".1f") for x in table["median_hours_to_review"]],
         "missed_of_screen": table["missed_cases_of_screen"]})
     window = (f" since {args.since}" if args.since else "") + (f" before {args.until}" if args.until else "")
     print(shown.to_string(index=False) if len(shown) else "no items flagged" + window)
@@ -302,19 +300,19 @@ def handle_audit(args) -> int:
 
     from cardiosieve.pipeline.audit import review_timeliness
     from cardiosieve.pipeline.config import load_settings
+    from cardiosieve.pipeline.run import RunError, parse_instant
     from cardiosieve.pipeline.store import read_items, read_reviews
 
     url = _url(args)
     if url is None:
         return EXIT_BAD_INPUT
+
     now = pd.Timestamp.now(tz="UTC")
-    try:
-        since = pd.Timestamp(args.since)
-        until = pd.Timestamp(args.until) if args.until else now
-    except ValueError:
+    try:                                   # a date without offset is UTC, as for `run`
+        since = parse_instant(args.since, "since")
+        until = parse_instant(args.until, "until") if args.until else now
+    except RunError:
         return _fail("audit: --since/--until: not a date (ISO 8601, e.g. 2026-11-01)")
-    since = since.tz_localize("UTC") if since.tzinfo is None else since.tz_convert("UTC")
-    until = until.tz_localize("UTC") if until.tzinfo is None else until.tz_convert("UTC")
     if until <= since:
         return _fail("audit: the period is empty (--until is not after --since)")
     targets = load_settings(args.config).review_target_h()
@@ -337,12 +335,17 @@ def handle_audit(args) -> int:
         return EXIT_OK
     shown = table.copy()
     for c in ("target_h", "median_h_to_review", "p90_h_to_review"):
-        shown[c] = ["-" if x != x else f"{x:.1f}" for x in shown[c]]
+        shown[c] = [_num(x, ".1f") for x in shown[c]]
     print(CAUTION)
     print(period)
     print(shown.to_string(index=False) if len(shown) else "no items flagged in the period")
     print(AUDIT_NOTE)
     return EXIT_OK
+
+
+def _num(x, fmt: str) -> str:
+    """A number for a text table; NaN (nothing to count from) shows as "-"."""
+    return "-" if x != x else format(x, fmt)
 
 
 def _print_json(obj) -> None:
