@@ -302,10 +302,9 @@ def svg_qtc(data: pd.DataFrame, limits: dict) -> str:
         times = data["acquired_at"].dt.tz_convert("UTC").dt.tz_localize(None)
         pad = max((times.max() - times.min()) * 0.1, pd.Timedelta(hours=12))
         ax.set_xlim(times.min() - pad, times.max() + pad)
-        ax.plot(data["acquired_at"].dt.tz_convert("UTC").dt.tz_localize(None), data["qtc_ms"], color="#3b3b3b",
-                marker="o", linewidth=1, label="QTc")
-        this = data[data["this_ecg"]]
-        ax.plot(this["acquired_at"].dt.tz_convert("UTC").dt.tz_localize(None), this["qtc_ms"], linestyle="none",
+        ax.plot(times, data["qtc_ms"], color="#3b3b3b", marker="o", linewidth=1, label="QTc")
+        this = data["this_ecg"].to_numpy(dtype=bool)
+        ax.plot(times[this], data["qtc_ms"][this], linestyle="none",
                 marker="D", markersize=9, markerfacecolor="none", color="black", label="this ECG")
     if limits.get("limit_ms") == limits.get("limit_ms") and limits.get("limit_ms") is not None:
         sex = {"F": "female", "M": "male"}.get(limits.get("sex"), "sex unknown")
