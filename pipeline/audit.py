@@ -34,11 +34,20 @@ TIMELINESS_COLUMNS = ["screen", "tier", "month", "items", "reviewed", "reviewed_
 
 
 def first_reviews(reviews: pd.DataFrame) -> pd.DataFrame:
-    """Each item's first recorded review (REVIEW_COLUMNS of pipeline/store.py), indexed by item_id."""
+    """Each item's first recorded review (REVIEW_COLUMNS of pipeline/store.py, tier_at_review
+    among them), indexed by item_id."""
     if reviews.empty:
         return pd.DataFrame(columns=["reviewed_at", "tier_at_review"], index=pd.Index([], name="item_id"))
-    r = reviews.sort_values(["item_id", "reviewed_at"], kind="mergesort")
+    order = ["item_id", "reviewed_at"] + (["review_id"] if "review_id" in reviews.columns else [])
+    r = reviews.sort_values(order, kind="mergesort")
     return r.drop_duplicates("item_id", keep="first").set_index("item_id")
+
+
+def hours_to_first_review(items: pd.DataFrame, first: pd.DataFrame) -> pd.Series:
+    """Per item (items' index): hours from its first_flagged_at to its first review (`first`,
+    from first_reviews); NaN for an item never reviewed. `yield` takes its median too."""
+    reviewed_at = pd.to_datetime(items["item_id"].map(first["reviewed_at"]), utc=True)
+    return (reviewed_at - pd.to_datetime(items["first_flagged_at"], utc=True)) / pd.Timedelta(hours=1)
 
 
 def review_timeliness(items: pd.DataFrame, reviews: pd.DataFrame, targets_h: dict[int, float],
@@ -51,19 +60,16 @@ def review_timeliness(items: pd.DataFrame, reviews: pd.DataFrame, targets_h: dic
     as_of = pd.Timestamp(as_of).tz_convert("UTC")
     first = first_reviews(reviews)
     flagged = pd.to_datetime(items["first_flagged_at"], utc=True)
-    reviewed_at = pd.to_datetime(items["item_id"].map(first["reviewed_at"]), utc=True)
-    tier_seen = items["item_id"].map(first["tier_at_review"]) if "tier_at_review" in first.columns else None
-    tier = pd.to_numeric(tier_seen, errors="coerce").fillna(items["tier"]) if tier_seen is not None \
-        else items["tier"]
-    tier = tier.astype(int)
+    hours = hours_to_first_review(items, first)
+    tier_seen = pd.to_numeric(items["item_id"].map(first["tier_at_review"]), errors="coerce")
+    tier = tier_seen.fillna(items["tier"]).astype(int)
     target = tier.map(targets_h).astype(float)
-    hours = (reviewed_at - flagged) / pd.Timedelta(hours=1)
-    is_reviewed = reviewed_at.notna()
+    is_reviewed = hours.notna()
     explained = ~is_reviewed & items["status"].eq("explained")
     waited = (as_of - flagged) / pd.Timedelta(hours=1)
     df = pd.DataFrame({
         "screen": items["screen"].astype(str), "tier": tier,
-        "month": flagged.dt.tz_convert("UTC").dt.strftime("%Y-%m"),
+        "month": flagged.dt.strftime("%Y-%m"),
         "reviewed": is_reviewed, "reviewed_late": is_reviewed & (hours > target),
         "overdue": ~is_reviewed & ~explained & (waited > target),
         "pending": ~is_reviewed & ~explained & (waited <= target),

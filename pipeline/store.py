@@ -579,6 +579,13 @@ def _frame(rows, columns) -> pd.DataFrame:
     return pd.DataFrame([tuple(r) for r in rows], columns=columns)
 
 
+def _items(rows) -> pd.DataFrame:
+    """Item rows read from worklist_item (ITEM_COLUMNS) as a typed frame in queue order."""
+    if not rows:
+        return empty_items()
+    return queue_order(normalise_items(_frame(rows, ITEM_COLUMNS)))
+
+
 def _read(conn: Connection, item_ids=None, patient_ids=None, screens=None, for_update: bool = False) -> pd.DataFrame:
     t = worklist_item
     cols = [t.c[c] for c in ITEM_COLUMNS]
@@ -598,9 +605,7 @@ def _read(conn: Connection, item_ids=None, patient_ids=None, screens=None, for_u
         if item_ids is not None and patient_ids is not None:
             wanted = set(map(str, patient_ids))
             rows = [r for r in rows if r.patient_id in wanted]
-    if not rows:
-        return empty_items()
-    return queue_order(normalise_items(_frame(rows, ITEM_COLUMNS)))
+    return _items(rows)
 
 
 def read_items(engine: Engine, patient_ids=None, screens=None, item_ids=None) -> pd.DataFrame:
@@ -622,9 +627,7 @@ def read_worklist(engine: Engine, run_ids) -> pd.DataFrame:
          .where(t.c.status.in_(ACTIVE_STATUSES) | t.c.run_id.in_(run_ids)))
     with engine.connect() as conn:
         rows = conn.execute(q).all()
-    if not rows:
-        return empty_items()
-    return queue_order(normalise_items(_frame(rows, ITEM_COLUMNS)))
+    return _items(rows)
 
 
 REVIEW_COLUMNS = ["item_id", "reviewed_at", "reviewer_role", "outcome", "note", "recorded_via",
@@ -1008,6 +1011,8 @@ def yield_table(engine: Engine, since=None, until=None, by: str = "tier") -> pd.
     stands where `tier` does."""
     if by not in YIELD_GROUPS:
         raise ValueError(f"yield: unknown grouping {by!r} (known: {', '.join(YIELD_GROUPS)})")
+    from cardiosieve.pipeline.audit import first_reviews, hours_to_first_review
+
     t, r = worklist_item, review
     q = select(t.c.item_id, t.c.screen, t.c.tier, t.c.rule_version, t.c.first_flagged_at)
     if since is not None:
@@ -1034,9 +1039,8 @@ def yield_table(engine: Engine, since=None, until=None, by: str = "tier") -> pd.
     reviews["reviewed_at"] = pd.to_datetime(reviews["reviewed_at"], utc=True)
     reviews = reviews.sort_values(["item_id", "reviewed_at", "review_id"])
     latest = reviews.drop_duplicates("item_id", keep="last")[["item_id", "outcome", "rule_version_at_review"]]
-    first = reviews.drop_duplicates("item_id", keep="first")[["item_id", "reviewed_at"]]
-    items = items.merge(latest, on="item_id", how="left").merge(first, on="item_id", how="left")
-    items["hours"] = (items["reviewed_at"] - items["first_flagged_at"]) / pd.Timedelta(hours=1)
+    items = items.merge(latest, on="item_id", how="left")
+    items["hours"] = hours_to_first_review(items, first_reviews(reviews))
     if by == "rule_version":
         reviewed_under = items["rule_version_at_review"].where(items["outcome"].notna())
         items["rule_version"] = reviewed_under.fillna(items["rule_version"]).fillna("").astype("str")
