@@ -19,7 +19,11 @@ Definitions (docs/audit.md gives them with a worked example)
     explained        not reviewed and explained away by later data (status explained): counted
                      on their own, neither overdue nor pending.
 Percentiles are linear interpolation between the order statistics (pandas' quantile, the
-"linear" method; Hyndman and Fan type 7), the usual default of statistics software.
+"linear" method; definition 7 of [HYNDMAN-FAN-1996]), the usual default of statistics software.
+
+Sources
+    HYNDMAN-FAN-1996  Hyndman RJ, Fan Y. Sample quantiles in statistical packages. Am Stat
+                      1996;50:361-365 (docs/references.md).
 
 Pure: frames in, a frame out; no files, no connections, no clock (the caller passes `as_of`).
 Counts and hours only: no item or patient identifier in the result.

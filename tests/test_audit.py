@@ -45,7 +45,8 @@ def test_counts_hours_and_the_90th_percentile_by_hand():
     t1 = got.loc[(1, "2026-11")]
     # Tier 1 (target 1 h): first reviews after 0.5, 2 and 3 h, so two late; item 4 never
     # reviewed and weeks past its target: overdue. Median 2.0 h; 90th percentile by linear
-    # interpolation (Hyndman-Fan type 7): position 0.9 x (3 - 1) = 1.8 between 2 and 3 -> 2.8 h.
+    # interpolation, definition 7 of [HYNDMAN-FAN-1996]: position 0.9 x (3 - 1) = 1.8 between 2
+    # and 3 -> 2.8 h (worked by hand).
     assert (t1["items"], t1["reviewed"], t1["reviewed_late"], t1["overdue"], t1["pending"]) == (4, 3, 2, 1, 0)
     assert t1["median_h_to_review"] == pytest.approx(2.0) and t1["p90_h_to_review"] == pytest.approx(2.8)
     t2 = got.loc[(2, "2026-11")]
