@@ -30,6 +30,7 @@ OUTCOME_HELP = "finding_real, finding_not_real, already_known, data_problem"
 SCREEN_HELP = "hyperkalemia, long_qt, st_deviation"
 STATUS_HELP = "open, reopened, explained, closed"
 TIERS = (1, 2, 3, 4)
+AUDIT_FORMATS = ("table", "json", "csv", "parquet", "html")
 FORMATS = ("text", "json", "csv")
 YIELD_FORMATS = ("table", "text", "json", "csv")   # text: the name of table before, still taken
 # Kept in step with pipeline.store.YIELD_GROUPS (tests/test_history.py checks it).
@@ -90,18 +91,30 @@ def register(subparsers) -> None:
                    help="table (default; text is the same), json or csv")
     p.set_defaults(handler=handle_yield, func=handle_yield)
 
-    p = subparsers.add_parser("audit", help="review timeliness per screen, tier and month: late, overdue, "
-                                            "median and 90th-percentile hours to review",
-                              description="For quality improvement: of the items first flagged in [--since, "
-                                          "--until), how many were reviewed, reviewed later than the site's "
-                                          "target for their tier ([audit] in --config), or not reviewed and "
-                                          "overdue; hours from first flagged to first review. Counts only. "
-                                          "See docs/audit.md.")
+    p = subparsers.add_parser("audit", help="missed-findings audit: review timeliness, findings with no "
+                                            "follow-up in the lake, yield per rule version",
+                              description="For quality improvement, over [--since, --until): of the items "
+                                          "first flagged, how many were reviewed, reviewed later than the "
+                                          "site's target for their tier, or not reviewed and overdue (hours "
+                                          "from first flagged to first review); with --lake, the findings "
+                                          "with no follow-up in the lake (a severe potassium with no repeat, "
+                                          "an ST elevation with no repeat ECG or troponin, a QTc above 500 ms "
+                                          "followed by a QT-prolonging dose); and the review yield per rule "
+                                          "version. Counts only unless --items. See docs/audit.md.")
     add_store_options(p)
     p.add_argument("--since", metavar="DATE", required=True, help="first day of the period (UTC), e.g. 2026-11-01")
     p.add_argument("--until", metavar="DATE", help="end of the period, excluded (UTC; default: now)")
-    p.add_argument("--config", help="site configuration (TOML): its [audit] review targets per tier")
-    p.add_argument("--format", default="table", choices=("table", "json", "csv"))
+    p.add_argument("--config", help="site configuration (TOML): its [audit] targets and follow-up windows, "
+                                    "lab codes and drug classes")
+    p.add_argument("--lake", metavar="LAKE", help="the lake, for the follow-up rules (without it they are "
+                                                  "reported as not assessed)")
+    p.add_argument("--items", action="store_true",
+                   help="also list each item and finding with its item, ECG and patient id (for the analyst; "
+                        "without it the report holds counts only)")
+    p.add_argument("--format", default="table", choices=AUDIT_FORMATS,
+                   help="table (default) or json on standard output; csv or parquet files in the --output "
+                        "folder; html: one offline file with plots (--output FILE)")
+    p.add_argument("--output", "-o", metavar="PATH", help="the folder (csv, parquet) or file (html) to write")
     p.set_defaults(handler=handle_audit, func=handle_audit)
 
     p = subparsers.add_parser("export", help="write the stored worklist as CSV for spreadsheets")
@@ -293,20 +306,23 @@ def handle_yield(args) -> int:
 AUDIT_NOTE = ("late: reviewed after the target for its tier; overdue: not reviewed and past the target when "
               "the audit ran; pending: not reviewed, still within it; hours from first flagged to the first "
               "review (docs/audit.md)")
+FOLLOW_UP_NOTE = ("to_review: the window passed and the lake holds no follow-up (for qt_drug_after: a "
+                  "QT-prolonging dose was given in it); as_expected: the follow-up is there (for qt_drug_after: no "
+                  "dose); window_open: not yet known; not_assessed: an input is missing, unknown (docs/audit.md). "
+                  "A question for review, never a verdict on care.")
 
 
 def handle_audit(args) -> int:
     import pandas as pd
 
-    from cardiosieve.pipeline.audit import review_timeliness
+    from cardiosieve.pipeline import audit, followup
     from cardiosieve.pipeline.config import load_settings
     from cardiosieve.pipeline.run import RunError, parse_instant
-    from cardiosieve.pipeline.store import read_items, read_reviews
+    from cardiosieve.pipeline.store import read_history, read_items_between, read_reviews, yield_table
 
     url = _url(args)
     if url is None:
         return EXIT_BAD_INPUT
-
     now = pd.Timestamp.now(tz="UTC")
     try:                                   # a date without offset is UTC, as for `run`
         since = parse_instant(args.since, "since")
@@ -315,32 +331,140 @@ def handle_audit(args) -> int:
         return _fail("audit: --since/--until: not a date (ISO 8601, e.g. 2026-11-01)")
     if until <= since:
         return _fail("audit: the period is empty (--until is not after --since)")
-    targets = load_settings(args.config).review_target_h()
+    if args.format in ("csv", "parquet", "html") and not args.output:
+        return _fail(f"audit: --format {args.format} writes files: give --output "
+                     f"{'FILE' if args.format == 'html' else 'FOLDER'}")
+    if args.lake and not Path(args.lake).is_dir():
+        return _fail("audit: --lake: not a folder")
+    settings = load_settings(args.config)
+    targets = settings.review_target_h()
     engine = _store(url)
     try:
-        items = read_items(engine)
-        items = items[(items["first_flagged_at"] >= since) & (items["first_flagged_at"] < until)]
+        items = read_items_between(engine, since, until)
         reviews = read_reviews(engine, items["item_id"])
+        by_version = yield_table(engine, since=since, until=until, by="rule_version")
+        if args.lake:
+            findings = followup.latest_findings(read_history(engine, since, until),
+                                                read_items_between(engine, since, until, column="ecg_at"))
     finally:
         engine.dispose()
-    table = review_timeliness(items, reviews, targets, as_of=now)
-    period = f"items first flagged in [{since:%Y-%m-%d %H:%M}, {until:%Y-%m-%d %H:%M}) UTC"
+    per_item = audit.timeliness_items(items, reviews, targets, as_of=now)
+    timeliness = audit.review_timeliness(items, reviews, targets, as_of=now)
+    checks = None
+    if args.lake:
+        cands = followup.follow_up_candidates(findings, settings.audit)
+        checks = followup.check_follow_ups(cands, followup.read_follow_up_inputs(args.lake, settings, cands), now)
+    follow_up = followup.follow_up_summary(checks) if checks is not None else None
+    report = {"timeliness": timeliness, "follow_up": follow_up, "yield_by_rule_version": by_version}
+    if args.items:
+        report["timeliness_items"] = per_item
+        report["follow_up_items"] = checks
+    period = f"[{since:%Y-%m-%d %H:%M}, {until:%Y-%m-%d %H:%M}) UTC"
     if args.format == "json":
         from cardiosieve.pipeline.jsontext import plain
-        _print_json({"caution": CAUTION, "period": period, "note": AUDIT_NOTE, "targets_h": targets,
-                     "rows": plain(table.to_dict("records"))})
+        _print_json({"caution": CAUTION, "period": period, "note": AUDIT_NOTE, "follow_up_note": FOLLOW_UP_NOTE,
+                     "targets_h": targets, "follow_up_settings": {k: v for k, v in settings.audit.items()
+                                                                  if k.startswith("follow_up_")},
+                     **{k: None if v is None else plain(v.to_dict("records")) for k, v in report.items()}})
         return EXIT_OK
-    if args.format == "csv":
-        table.to_csv(sys.stdout, index=False, lineterminator="\n")
+    if args.format in ("csv", "parquet"):
+        return _write_audit_files(report, Path(args.output), args.format)
+    if args.format == "html":
+        _write_text(Path(args.output), _audit_html(report, per_item, targets, period, settings))
+        print(f"cardiosieve audit: wrote {args.output}")
         return EXIT_OK
-    shown = table.copy()
+    _print_audit(report, period)
+    return EXIT_OK
+
+
+def _write_text(path: Path, text: str) -> None:
+    from cardiosieve.pipeline.files import write_text_atomic
+    write_text_atomic(text, path)
+
+
+def _write_audit_files(report: dict, folder: Path, fmt: str) -> int:
+    """One file per part of the report, audit_<part>.<fmt>, in `folder` (made if missing); a
+    part that was not computed (the follow-ups without --lake) has no file."""
+    from cardiosieve.pipeline.files import private_dir, write_parquet_atomic
+    from cardiosieve.pipeline.store import spreadsheet_safe_frame
+
+    private_dir(folder)
+    for name, frame in report.items():
+        if frame is None:
+            continue
+        path = folder / f"audit_{name}.{fmt}"
+        if fmt == "parquet":
+            write_parquet_atomic(frame.reset_index(drop=True), path)
+        else:
+            _write_text(path, spreadsheet_safe_frame(frame).to_csv(index=False, lineterminator="\n"))
+        print(f"cardiosieve audit: wrote {path}")
+    return EXIT_OK
+
+
+def _print_audit(report: dict, period: str) -> None:
+    shown = report["timeliness"].copy()
     for c in ("target_h", "median_h_to_review", "p90_h_to_review"):
         shown[c] = [_num(x, ".1f") for x in shown[c]]
     print(CAUTION)
-    print(period)
+    print(f"Review timeliness: items first flagged in {period}")
     print(shown.to_string(index=False) if len(shown) else "no items flagged in the period")
     print(AUDIT_NOTE)
-    return EXIT_OK
+    print()
+    print(f"Follow-up in the lake: findings on ECGs acquired in {period}")
+    f = report["follow_up"]
+    if f is None:
+        print("not assessed: no --lake given")
+    else:
+        print(f.to_string(index=False) if len(f) else "no finding a follow-up rule applies to in the period")
+        print(FOLLOW_UP_NOTE)
+    print()
+    y = report["yield_by_rule_version"]
+    print("Review yield per rule version (as `cardiosieve yield --by rule_version`)")
+    if len(y):
+        y = y.assign(ppv=[_num(x, ".2f") for x in y["ppv"]],
+                     ppv_95ci=["-" if lo != lo else f"{lo:.2f}-{hi:.2f}" for lo, hi in zip(y["ppv_low"], y["ppv_high"])])
+        print(y[["screen", "rule_version", "items", "reviewed", "ppv", "ppv_95ci"]].to_string(index=False))
+    else:
+        print("no items flagged in the period")
+    for name in ("timeliness_items", "follow_up_items"):
+        if report.get(name) is not None:
+            print()
+            print(f"{name.replace('_', ' ')}:")
+            print(report[name].to_string(index=False) if len(report[name]) else "none")
+
+
+def _audit_html(report: dict, per_item, targets: dict, period: str, settings) -> str:
+    """The audit as one offline HTML file: each part's plot and its table (pages.report_page)."""
+    from cardiosieve.pipeline import plots
+    from cardiosieve.pipeline.pages import report_page
+
+    f = report["follow_up"]
+    y = report["yield_by_rule_version"]
+    sections = [
+        {"heading": "Time to first review by tier", "anchor": "timeliness", "frame": report["timeliness"],
+         "note": AUDIT_NOTE, "empty": "no items flagged in the period",
+         "svg": plots.svg_review_hours(per_item, targets),
+         "alt": "hours from first flagged to first review, a box per tier, the tier's target dashed"},
+        {"heading": "Follow-up in the lake: findings to review, by month", "anchor": "follow-up", "frame": f,
+         "note": FOLLOW_UP_NOTE if f is not None else "not assessed: the audit was run without --lake",
+         "empty": "no finding a follow-up rule applies to in the period" if f is not None else "not assessed",
+         "svg": plots.svg_follow_up_by_month(f) if f is not None else "",
+         "alt": "findings to review, per follow-up rule and month (one hatch per rule)"},
+        {"heading": "PPV per rule version", "anchor": "yield", "frame": y, "empty": "no items flagged in the period",
+         "note": "PPV = (finding_real + already_known) / reviewed, with its 95 % Wilson interval, per the rule "
+                 "version an item was reviewed under.",
+         "svg": plots.svg_ppv_by_version(y) if len(y) else "",
+         "alt": "PPV with its 95 % Wilson interval per screen and rule version"},
+    ]
+    for name in ("timeliness_items", "follow_up_items"):
+        if report.get(name) is not None:
+            sections.append({"heading": name.replace("_", " "), "anchor": name, "frame": report[name],
+                             "note": "Item-level rows (--items): they name items and patients.", "empty": "none"})
+    intro = [f"Period: {period}.", f"Site configuration: {settings.source}.",
+             "A missed or late review, or a finding with no follow-up in the lake, is a question for the "
+             "team's own review process under local protocols, never a verdict on care: the follow-up may "
+             "have happened outside the lake's feeds."]
+    return report_page("Missed-findings audit", intro, sections)
 
 
 def _num(x, fmt: str) -> str:

@@ -54,7 +54,16 @@ DEFAULT_QUALITY = {"missing_feed": "critical", "lab_feed_min_ecgs": 20.0}
 # protocol: tier 1 within the hour, tier 2 within a shift, tier 3 within three days, tier 4
 # within a week.
 DEFAULT_AUDIT = {"review_target_h_tier_1": 1.0, "review_target_h_tier_2": 12.0, "review_target_h_tier_3": 72.0,
-                 "review_target_h_tier_4": 168.0}
+                 "review_target_h_tier_4": 168.0,
+                 # The follow-up rules (pipeline/followup.py, docs/audit.md gives each one's rationale):
+                 # a potassium at or above follow_up_k_mmol_l (UKKA-2020's severe band) with no repeat
+                 # potassium within follow_up_k_h; an ST-elevation finding with no repeat ECG or
+                 # troponin within follow_up_st_h; a QTc above follow_up_qtc_ms (AHA-2010-TDP) with a
+                 # QT-prolonging drug given within follow_up_qt_drug_h after the ECG. The windows
+                 # are common practice, the drug window a local choice.
+                 "follow_up_k_mmol_l": 6.5, "follow_up_k_h": 6.0, "follow_up_st_h": 6.0,
+                 "follow_up_qtc_ms": 500.0, "follow_up_qt_drug_h": 24.0}
+REVIEW_TARGET_PREFIX = "review_target_h_tier_"
 
 
 @dataclass(frozen=True)
@@ -82,7 +91,8 @@ class Settings:
 
     def review_target_h(self) -> dict[int, float]:
         """Tier -> hours within which its items should be reviewed ([audit])."""
-        return {int(k.rsplit("_", 1)[1]): v for k, v in self.audit.items()}
+        return {int(k[len(REVIEW_TARGET_PREFIX):]): v for k, v in self.audit.items()
+                if k.startswith(REVIEW_TARGET_PREFIX)}
 
     def analyte_of_code(self) -> dict[str, str]:
         """LOINC code -> analyte name, troponin assays included."""

@@ -133,6 +133,22 @@ _ITEM = """
 </form>{% endif %}
 """
 
+# An analyst's report (`cardiosieve audit --format html`): headed sections, each with a note,
+# an optional plot and its numbers as a table (a plot never stands without them).
+_REPORT = """
+<h1>{{ heading }}</h1>
+{% for line in intro %}<p>{{ line }}</p>{% endfor %}
+{% for s in sections %}<section>
+<h2 id="{{ s.anchor }}">{{ s.heading }}</h2>
+{% if s.note %}<p>{{ s.note }}</p>{% endif %}
+{% if s.plot %}<figure class="plot"><img src="data:image/svg+xml;base64,{{ s.plot }}" alt="{{ s.alt }}">
+<figcaption>{{ s.alt }}</figcaption></figure>{% endif %}
+{% if s.rows %}<table><thead><tr>{% for c in s.columns %}<th scope="col">{{ c }}</th>{% endfor %}</tr></thead>
+<tbody>{% for r in s.rows %}<tr>{% for v in r %}<td>{{ v }}</td>{% endfor %}</tr>{% endfor %}</tbody></table>
+{% else %}<p class="missing">{{ s.empty }}</p>{% endif %}
+</section>{% endfor %}
+"""
+
 _MESSAGE = """<h1>{{ heading }}</h1><p>{{ message }}</p><p><a href="/">Back to the worklist</a></p>"""
 
 OUTCOME_WORDS = {   # pipeline/commands.py `review --help` words them the same way
@@ -147,7 +163,7 @@ OUTCOME_WORDS = {   # pipeline/commands.py `review --help` words them the same w
 def _env():
     import jinja2
     return jinja2.Environment(loader=jinja2.DictLoader({"base": _BASE, "worklist": _WORKLIST, "item": _ITEM,
-                                                        "message": _MESSAGE}),
+                                                        "message": _MESSAGE, "report": _REPORT}),
                               autoescape=True, undefined=jinja2.StrictUndefined)
 
 
@@ -157,6 +173,35 @@ def render(name: str, title: str, *, inline_css: bool = False, **context) -> str
     body = env.get_template(name).render(**context)
     return env.get_template("base").render(title=title, app_name=APP_NAME, caution=CAUTION, css=CSS,
                                            inline_css=inline_css, body=Markup(body))
+
+
+def report_page(title: str, intro: list[str], sections: list[dict]) -> str:
+    """A self-contained report (inline style, plots as inline SVG images): `sections` are dicts
+    of heading, anchor, note, frame (a DataFrame shown as a table; NaN and None read "unknown"),
+    empty (what to say when the frame has no rows), and optionally svg and alt (the plot)."""
+    shown = []
+    for s in sections:
+        frame = s.get("frame")
+        rows = [] if frame is None else [[_cell(v) for v in r] for r in frame.itertuples(index=False)]
+        shown.append({"heading": s["heading"], "anchor": s.get("anchor", ""), "note": s.get("note", ""),
+                      "columns": [] if frame is None else list(frame.columns), "rows": rows,
+                      "empty": s.get("empty", "none"), "plot": _b64(s["svg"]) if s.get("svg") else "",
+                      "alt": s.get("alt", "")})
+    return render("report", title, inline_css=True, heading=title, intro=intro, sections=shown)
+
+
+def _cell(v) -> str:
+    """A table cell of a report: a float to 2 decimals, an instant in ISO 8601, missing (None,
+    NaN, NaT, NA) as unknown."""
+    try:
+        missing = v is None or bool(v != v)
+    except TypeError:                     # pandas' NA has no truth value: it is missing
+        missing = True
+    if missing:
+        return UNKNOWN
+    if isinstance(v, float):
+        return f"{v:.2f}"
+    return v.isoformat() if hasattr(v, "isoformat") else str(v)
 
 
 def message_page(heading: str, message: str) -> str:

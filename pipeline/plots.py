@@ -332,3 +332,83 @@ def svg_intervals(data: pd.DataFrame) -> str:
         ax.set_title(f"{r.label} ({r.unit})", fontsize=8)
         ax.tick_params(labelsize=7)
     return _svg(fig)
+
+
+# ---------------------------------------------------------------------------------------------
+# The analysts' audit (`cardiosieve audit --format html`, docs/audit.md)
+# ---------------------------------------------------------------------------------------------
+HATCHES = ("", "///", "...", "xxx", "\\\\\\", "++")   # bars told apart by pattern, not colour alone
+
+
+def svg_review_hours(per_item: pd.DataFrame, targets_h: dict[int, float]) -> str:
+    """Hours from first flagged to first review per tier (audit.timeliness_items), a box per
+    tier with every item's point, and the tier's target as a dashed line."""
+    fig = _figure(8.5, 3.0)
+    ax = fig.add_subplot()
+    tiers = sorted(targets_h)
+    reviewed = per_item.dropna(subset=["hours_to_review"])
+    for i, tier in enumerate(tiers):
+        h = reviewed.loc[reviewed["tier"] == tier, "hours_to_review"].to_numpy(dtype=float)
+        if len(h):
+            ax.boxplot([h], positions=[i], widths=0.5, showfliers=False)
+            ax.plot(np.full(len(h), i) + np.linspace(-0.15, 0.15, len(h)), h, linestyle="none", marker="o",
+                    markersize=3, color="#3b3b3b")
+        else:
+            ax.text(i, 0.5, "none reviewed", ha="center", fontsize=7, transform=ax.get_xaxis_transform())
+        ax.hlines(targets_h[tier], i - 0.35, i + 0.35, color="#b00020", linestyle="dashed",
+                  label="target for the tier" if i == 0 else None)
+    ax.set_xticks(range(len(tiers)), [f"tier {t}" for t in tiers], fontsize=8)
+    ax.set_xlim(-0.6, len(tiers) - 0.4)
+    if len(reviewed) and (reviewed["hours_to_review"] > 0).all():
+        ax.set_yscale("log")
+    ax.set_ylabel("hours to first review", fontsize=8)
+    ax.tick_params(labelsize=7)
+    _legend(ax, fontsize=7, loc="best")
+    return _svg(fig)
+
+
+def svg_follow_up_by_month(summary: pd.DataFrame, outcome: str = "to_review") -> str:
+    """Findings of each follow-up rule ending in `outcome`, by month (followup.follow_up_summary),
+    as grouped bars: one hatch per rule."""
+    fig = _figure(8.5, 3.0)
+    ax = fig.add_subplot()
+    if summary.empty:
+        ax.text(0.5, 0.5, "no finding a follow-up rule applies to in the period", transform=ax.transAxes,
+                ha="center", fontsize=8)
+        return _svg(fig)
+    table = summary.pivot_table(index="month", columns="rule", values=outcome, aggfunc="sum", fill_value=0)
+    months, rules = list(table.index), list(table.columns)
+    width = 0.8 / max(len(rules), 1)
+    x = np.arange(len(months))
+    for j, rule in enumerate(rules):
+        ax.bar(x + (j - (len(rules) - 1) / 2) * width, table[rule].to_numpy(), width, color="white",
+               edgecolor="#3b3b3b", hatch=HATCHES[j % len(HATCHES)], label=rule)
+    ax.set_xticks(x, months, fontsize=7)
+    ax.set_ylabel(f"findings {outcome.replace('_', ' ')}", fontsize=8)
+    ax.yaxis.get_major_locator().set_params(integer=True)
+    ax.tick_params(labelsize=7)
+    _legend(ax, fontsize=7, loc="best")
+    return _svg(fig)
+
+
+def svg_ppv_by_version(yield_rows: pd.DataFrame) -> str:
+    """PPV with its 95 % Wilson interval per screen and rule version (store.yield_table with
+    by="rule_version"); a row with no reviewed item is marked "none reviewed", not drawn as 0."""
+    fig = _figure(8.5, 3.2)
+    ax = fig.add_subplot()
+    rows = yield_rows.reset_index(drop=True)
+    labels = [f"{s}\n{v}" for s, v in zip(rows["screen"], rows["rule_version"])]
+    for i, r in rows.iterrows():         # one point per rule version: a handful of rows
+        if r["reviewed"] and r["ppv"] == r["ppv"]:
+            ax.errorbar([i], [r["ppv"]], yerr=[[r["ppv"] - r["ppv_low"]], [r["ppv_high"] - r["ppv"]]],
+                        fmt="o", color="#3b3b3b", capsize=4)
+            ax.annotate(f"n={int(r['reviewed'])}", (i, r["ppv_high"]), textcoords="offset points", xytext=(0, 4),
+                        ha="center", fontsize=6)
+        else:
+            ax.text(i, 0.5, "none\nreviewed", ha="center", fontsize=6)
+    ax.set_xticks(range(len(rows)), labels, fontsize=6)
+    ax.set_xlim(-0.6, max(len(rows), 1) - 0.4)
+    ax.set_ylim(0, 1.05)
+    ax.set_ylabel("PPV (95 % Wilson interval)", fontsize=8)
+    ax.tick_params(labelsize=7)
+    return _svg(fig)

@@ -647,6 +647,32 @@ def read_reviews(engine: Engine, item_ids) -> pd.DataFrame:
     return df
 
 
+def read_items_between(engine: Engine, since, until, column: str = "first_flagged_at") -> pd.DataFrame:
+    """Stored items (ITEM_COLUMNS) whose `column` (first_flagged_at or ecg_at) is in [since,
+    until): one WHERE in SQL, so an audit of a month does not read the store's whole history."""
+    if column not in ("first_flagged_at", "ecg_at"):
+        raise ValueError(f"read_items_between: not a time column of an item: {column!r}")
+    t = worklist_item
+    q = (select(*[t.c[c] for c in ITEM_COLUMNS])
+         .where(t.c[column] >= _utc_bound(since), t.c[column] < _utc_bound(until)))
+    with engine.connect() as conn:
+        return _items(conn.execute(q).all())
+
+
+def read_history(engine: Engine, since, until) -> pd.DataFrame:
+    """finding_history rows (HISTORY_COLUMNS) of the ECGs acquired in [since, until), oldest run
+    first; run_end_at and acquired_at in UTC."""
+    h = finding_history
+    q = (select(*[h.c[c] for c in HISTORY_COLUMNS])
+         .where(h.c.acquired_at >= _utc_bound(since), h.c.acquired_at < _utc_bound(until))
+         .order_by(h.c.run_end_at, h.c.history_id))
+    with engine.connect() as conn:
+        df = _frame(conn.execute(q).all(), HISTORY_COLUMNS)
+    for c in ("run_end_at", "acquired_at"):
+        df[c] = pd.to_datetime(df[c], utc=True)
+    return df
+
+
 # ---------------------------------------------------------------------------------------------
 # Upsert and rank
 # ---------------------------------------------------------------------------------------------

@@ -78,7 +78,8 @@ def test_no_items_is_an_empty_table_with_the_columns():
 def test_the_site_sets_its_own_targets_and_a_bad_one_is_refused():
     s = settings_from_dict({"audit": {"review_target_h_tier_1": 0.5}})
     assert s.review_target_h() == {**TARGETS, 1: 0.5}
-    assert settings_from_dict({}).review_target_h() == {int(k[-1]): v for k, v in DEFAULT_AUDIT.items()}
+    assert settings_from_dict({}).review_target_h() == {int(k[-1]): v for k, v in DEFAULT_AUDIT.items()
+                                                        if k.startswith("review_target_h_tier_")}
     for bad in ({"review_target_h_tier_5": 1}, {"review_target_h_tier_1": 0}, {"review_target_h_tier_2": "soon"}):
         with pytest.raises(ValueError, match=r"\[audit\]"):
             settings_from_dict({"audit": bad})
@@ -105,7 +106,7 @@ def test_audit_prints_counts_per_screen_and_tier_and_names_no_patient(store, cap
     code = main(["audit", "--db", url, "--since", "2026-11-01", "--until", "2026-12-01", "--format", "json"])
     out = capsys.readouterr().out
     assert code == EXIT_OK
-    got = {r["tier"]: r for r in json.loads(out)["rows"]}
+    got = {r["tier"]: r for r in json.loads(out)["timeliness"]}
     # Tier 1: reviewed after 0.5 h and 6 h, target 1 h: one late. Tier 2: never reviewed, weeks
     # past its 12 h: overdue.
     assert (got[1]["items"], got[1]["reviewed"], got[1]["reviewed_late"]) == (2, 2, 1)
@@ -122,7 +123,7 @@ def test_audit_takes_the_sites_targets_from_its_config(store, capsys):
     (tmp_path / "site.toml").write_text("[audit]\nreview_target_h_tier_1 = 8\n")
     main(["audit", "--db", url, "--since", "2026-11-01", "--until", "2026-12-01", "--format", "json",
           "--config", str(tmp_path / "site.toml")])
-    rows = json.loads(capsys.readouterr().out)["rows"]
+    rows = json.loads(capsys.readouterr().out)["timeliness"]
     assert [r["reviewed_late"] for r in rows if r["tier"] == 1] == [0]      # 6 h is within 8 h
 
 
