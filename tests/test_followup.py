@@ -13,6 +13,7 @@ from cardiosieve.pipeline import followup
 from cardiosieve.pipeline.cli import EXIT_BAD_INPUT, EXIT_OK, main
 from cardiosieve.pipeline.codes import LOINC_TROPONIN_I_HS
 from cardiosieve.pipeline.config import DEFAULT_AUDIT, settings_from_dict
+from cardiosieve.pipeline.store import open_store, read_items, sqlite_url
 from tests.lake_builders import ecg_row, lab_row, lead_rows, patient_row, write_lake
 
 DAY = "2026-11-10"
@@ -60,6 +61,14 @@ def audited(tmp_path_factory):
     out = root / "out"
     assert main(["run", "--lake", str(lake), "--config", str(config), "--out", str(out),
                  "--start", DAY, "--end", "2026-11-11", "-q"]) == EXIT_OK
+    # Reviews as staff record them: E-K1's item after 30 min, E-S2's after 3 h (the night's run
+    # ended, and first flagged its items, at 2026-11-11 00:00).
+    engine = open_store(sqlite_url(out))
+    ids = read_items(engine).set_index("ecg_id")["item_id"]
+    engine.dispose()
+    for ecg_id, at in (("E-K1", "2026-11-11T00:30:00Z"), ("E-S2", "2026-11-11T03:00:00Z")):
+        assert main(["review", ids[ecg_id], "--outcome", "finding_real", "--role", "registrar", "--at", at,
+                     "--out", str(out)]) == EXIT_OK
     return out, lake, config
 
 
@@ -94,6 +103,21 @@ def test_each_rule_outcome_worked_by_hand(audited, capsys):
     assert "E-K3" not in rows
     # The potassium rule's window opens when the potassium was collected, not at the ECG.
     assert rows["E-K1"]["anchor_at"].startswith(f"{DAY}T08:00")
+
+
+def test_time_to_review_of_the_reviewed_items_by_hand(audited, capsys):
+    code, text = _audit(capsys, audited, "--format", "json", "--items")
+    doc = json.loads(text)
+    per = {r["patient_id"]: r for r in doc["timeliness_items"]}
+    # Tier 1, target 1 h: 0.5 h is in time, 3 h is late; the other tier-1 items, never reviewed
+    # and weeks past their hour when the audit runs, are overdue.
+    assert (per["P-K1"]["hours_to_review"], per["P-K1"]["timeliness"]) == (0.5, "in_time")
+    assert (per["P-S2"]["hours_to_review"], per["P-S2"]["timeliness"]) == (3.0, "late")
+    assert per["P-Q1"]["timeliness"] == "overdue"
+    row = next(r for r in doc["timeliness"] if r["screen"] == "st_deviation")
+    assert (row["items"], row["reviewed"], row["reviewed_late"], row["overdue"]) == (3, 1, 1, 2)
+    ppv = {r["screen"]: r for r in doc["yield_by_rule_version"]}
+    assert (ppv["hyperkalemia"]["reviewed"], ppv["hyperkalemia"]["ppv"]) == (1, 1.0)
 
 
 def test_the_counts_per_rule_and_rule_version_and_no_identifier_without_items(audited, capsys):
