@@ -348,3 +348,21 @@ def test_review_missed_records_a_case_from_the_command_line(tmp_path, capsys):
     assert code == 2 and "--ecg, --screen and --role are required" in err and "pat-Z" not in err
     code, text, _ = run(capsys, "yield", "--out", tmp_path, "--format", "json")
     assert [(r["screen"], r["items"], r["missed_cases_of_screen"]) for r in json.loads(text)["rows"]] == [("long_qt", 0, 1)]
+
+
+def test_the_audits_period_readers_select_in_sql_on_both_dialects(engine):
+    from cardiosieve.pipeline.store import read_history, read_items_between
+
+    night_with_history(engine, NIGHT)         # ECGs of 2026-03-01 10:00-12:00, flagged at NIGHT1
+    h = read_history(engine, "2026-03-01T10:30:00Z", "2026-03-01T12:00:00Z")
+    assert h["ecg_id"].tolist() == ["e3"]     # 11:00 in; 10:00 before the period; 12:00 is its open end
+    assert str(h["acquired_at"].dt.tz) == "UTC" and str(h["run_end_at"].dt.tz) == "UTC"
+    # The folded e1 + e2 item shows its most severe finding's ECG, e1 at 10:00.
+    assert read_items_between(engine, "2026-03-01T10:01:00Z", "2026-03-02", column="ecg_at")["ecg_id"].tolist() \
+        == ["e3"]
+    assert sorted(read_items_between(engine, "2026-03-01T10:00:00Z", "2026-03-02", column="ecg_at")["ecg_id"]) \
+        == ["e1", "e3"]
+    assert len(read_items_between(engine, NIGHT1, NIGHT1 + pd.Timedelta(seconds=1))) == 2
+    assert read_items_between(engine, NIGHT1 + pd.Timedelta(seconds=1), "2027-01-01").empty
+    with pytest.raises(ValueError, match="not a time column"):
+        read_items_between(engine, NIGHT1, NIGHT1, column="rank")
