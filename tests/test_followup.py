@@ -16,7 +16,7 @@ from cardiosieve.pipeline.config import DEFAULT_AUDIT, settings_from_dict
 from cardiosieve.pipeline.store import open_store, read_items, sqlite_url
 from tests.lake_builders import ecg_row, lab_row, lead_rows, patient_row, write_lake
 
-DAY = "2026-11-10"
+DAY, DAY2 = "2026-11-10", "2026-11-11"
 STE = {lead: {"st_j_uv": 250.0} for lead in ("II", "III", "aVF")}   # inferior, 2.5x the 100 uV cut point
 SITE = f"""[[troponin]]
 code = "{LOINC_TROPONIN_I_HS}"
@@ -32,6 +32,10 @@ def _at(hhmm: str) -> str:
     return f"{DAY}T{hhmm}:00Z"
 
 
+def _at2(hhmm: str) -> str:
+    return f"{DAY2}T{hhmm}:00Z"
+
+
 @pytest.fixture(scope="module")
 def audited(tmp_path_factory):
     """One night with a finding per case; returns (out, lake, config)."""
@@ -45,13 +49,18 @@ def audited(tmp_path_factory):
            ecg_row("E-S2", "P-S2", _at("10:00")),             # nothing after
            ecg_row("E-S3", "P-S3", _at("10:00")),             # troponin at 13:00 (3 h)
            ecg_row("E-Q1", "P-Q1", _at("10:00"), qt_ms=560.0),   # haloperidol at 14:00 (4 h after)
-           ecg_row("E-Q2", "P-Q2", _at("10:00"), qt_ms=560.0)]   # haloperidol only before the ECG
-    leads = [r for e in ecg for r in lead_rows(e["ecg_id"], **(STE if e["ecg_id"] in ("E-S1", "E-S2", "E-S3") else {}))]
+           ecg_row("E-Q2", "P-Q2", _at("10:00"), qt_ms=560.0),   # haloperidol only before the ECG
+           # The second night: an elevation whose repeat ECG came after 8 h, and a severe
+           # potassium late in the evening whose window runs past the lake's last day.
+           ecg_row("E-S4", "P-S4", _at2("10:00")), ecg_row("E-S4b", "P-S4", _at2("18:00")),
+           ecg_row("E-K5", "P-K5", _at2("22:00"), **wide)]
+    leads = [r for e in ecg for r in lead_rows(e["ecg_id"], **(STE if e["ecg_id"] in ("E-S1", "E-S2", "E-S3", "E-S4") else {}))]
     labs = [lab_row("L1", "P-K1", _at("08:00"), value=7.0), lab_row("L1b", "P-K1", _at("12:00"), value=6.1),
             lab_row("L2", "P-K2", _at("08:00"), value=6.8), lab_row("L2b", "P-K2", _at("16:00"), value=6.0),
             lab_row("L3", "P-K3", _at("08:00"), value=6.0), lab_row("L4", "P-K4", _at("21:30"), value=6.9),
             lab_row("T3", "P-S3", _at("13:00"), analyte=LOINC_TROPONIN_I_HS, value=40.0, unit="ng/L")]
     labs += [lab_row(f"N-{p}", p, _at("07:00"), value=4.0) for p in ("P-S1", "P-S2", "P-S3", "P-Q1", "P-Q2")]
+    labs += [lab_row("N-P-S4", "P-S4", _at2("07:00"), value=4.0), lab_row("L5", "P-K5", _at2("21:30"), value=6.6)]
     meds = [{"patient_id": "P-Q1", "administered_at": pd.Timestamp(_at("14:00")), "drug": "Haloperidol"},
             {"patient_id": "P-Q2", "administered_at": pd.Timestamp(_at("06:00")), "drug": "haloperidol"}]
     patients = [patient_row(p, sex="M", birth_date="1950-01-01") for p in sorted({e["patient_id"] for e in ecg})]
@@ -59,8 +68,9 @@ def audited(tmp_path_factory):
     config = root / "site.toml"
     config.write_text(SITE)
     out = root / "out"
-    assert main(["run", "--lake", str(lake), "--config", str(config), "--out", str(out),
-                 "--start", DAY, "--end", "2026-11-11", "-q"]) == EXIT_OK
+    for start, end in ((DAY, DAY2), (DAY2, "2026-11-12")):        # two nights, as the scheduler runs them
+        assert main(["run", "--lake", str(lake), "--config", str(config), "--out", str(out),
+                     "--start", start, "--end", end, "-q"]) == EXIT_OK
     # Reviews as staff record them: E-K1's item after 30 min, E-S2's after 3 h (the night's run
     # ended, and first flagged its items, at 2026-11-11 00:00).
     engine = open_store(sqlite_url(out))
@@ -86,14 +96,18 @@ def test_each_rule_outcome_worked_by_hand(audited, capsys):
     got = {e: (r["rule"], r["outcome"], r["hours_to_next"], r["next_kind"]) for e, r in rows.items()}
     assert got == {
         # Severe potassium: the repeat 4 h after the 08:00 result; P-K2's repeat came after 8 h,
-        # past the 6 h window; P-K4's window (21:30 + 6 h) runs past the lake's last day.
+        # past the 6 h window; P-K4's window (21:30 + 6 h) closed inside the second night, which
+        # the lake holds, with no repeat; P-K5's (the second night, 21:30 + 6 h) runs past the
+        # lake's last day: not yet known.
         "E-K1": ("k_no_repeat", "as_expected", 4.0, "potassium"),
         "E-K2": ("k_no_repeat", "to_review", None, ""),
-        "E-K4": ("k_no_repeat", "window_open", None, ""),
-        # ST elevation: a repeat ECG after 2 h; nothing; a troponin after 3 h.
+        "E-K4": ("k_no_repeat", "to_review", None, ""),
+        "E-K5": ("k_no_repeat", "window_open", None, ""),
+        # ST elevation: a repeat ECG after 2 h; nothing; a troponin after 3 h; a repeat after 8 h.
         "E-S1": ("st_elevation_no_repeat", "as_expected", 2.0, "ecg"),
         "E-S2": ("st_elevation_no_repeat", "to_review", None, ""),
         "E-S3": ("st_elevation_no_repeat", "as_expected", 3.0, "troponin"),
+        "E-S4": ("st_elevation_no_repeat", "to_review", None, ""),
         # QTc 560 ms: haloperidol 4 h after the ECG (within the site's 12 h) is the concern; a
         # dose before the ECG only is not.
         "E-Q1": ("qt_drug_after", "to_review", 4.0, "qt_drug"),
@@ -115,7 +129,7 @@ def test_time_to_review_of_the_reviewed_items_by_hand(audited, capsys):
     assert (per["P-S2"]["hours_to_review"], per["P-S2"]["timeliness"]) == (3.0, "late")
     assert per["P-Q1"]["timeliness"] == "overdue"
     row = next(r for r in doc["timeliness"] if r["screen"] == "st_deviation")
-    assert (row["items"], row["reviewed"], row["reviewed_late"], row["overdue"]) == (3, 1, 1, 2)
+    assert (row["items"], row["reviewed"], row["reviewed_late"], row["overdue"]) == (4, 1, 1, 3)
     ppv = {r["screen"]: r for r in doc["yield_by_rule_version"]}
     assert (ppv["hyperkalemia"]["reviewed"], ppv["hyperkalemia"]["ppv"]) == (1, 1.0)
 
@@ -126,8 +140,8 @@ def test_the_counts_per_rule_and_rule_version_and_no_identifier_without_items(au
     doc = json.loads(text)
     by_rule = {r["rule"]: r for r in doc["follow_up"]}
     assert {k: (r["findings"], r["as_expected"], r["to_review"], r["window_open"], r["not_assessed"])
-            for k, r in by_rule.items()} == {"k_no_repeat": (3, 1, 1, 1, 0),
-                                             "st_elevation_no_repeat": (3, 2, 1, 0, 0),
+            for k, r in by_rule.items()} == {"k_no_repeat": (4, 1, 2, 1, 0),
+                                             "st_elevation_no_repeat": (4, 2, 2, 0, 0),
                                              "qt_drug_after": (2, 1, 1, 0, 0)}
     assert by_rule["k_no_repeat"]["rule_version"] == "hyperkalemia/1.1.0"
     assert by_rule["qt_drug_after"]["window_h"] == 12.0            # the site's [audit] value
@@ -154,7 +168,7 @@ def test_csv_and_parquet_files_one_per_part(audited, capsys, tmp_path):
     assert names == ["audit_follow_up.parquet", "audit_follow_up_items.parquet", "audit_timeliness.parquet",
                      "audit_timeliness_items.parquet", "audit_yield_by_rule_version.parquet"]
     f = pd.read_parquet(tmp_path / "p" / "audit_follow_up.parquet")
-    assert int(f["to_review"].sum()) == 3
+    assert int(f["to_review"].sum()) == 5
 
 
 def test_without_the_lake_the_follow_ups_are_not_assessed_never_absent(audited, capsys):
