@@ -647,6 +647,40 @@ def read_reviews(engine: Engine, item_ids) -> pd.DataFrame:
     return df
 
 
+FINDING_HISTORY_READ = ["history_id", "run_id", "run_end_at", "item_id", "screen", "ecg_id", "patient_id",
+                        "acquired_at", "tier", "rule_version"]
+
+
+def read_finding_history(engine: Engine, since=None, until=None) -> pd.DataFrame:
+    """finding_history rows (FINDING_HISTORY_READ: the texts left out) of ECGs acquired in
+    [since, until) (either bound may be None), in the order they were appended; times in UTC."""
+    h = finding_history
+    q = select(*[h.c[c] for c in FINDING_HISTORY_READ])
+    if since is not None:
+        q = q.where(h.c.acquired_at >= _utc_bound(since))
+    if until is not None:
+        q = q.where(h.c.acquired_at < _utc_bound(until))
+    with engine.connect() as conn:
+        df = _frame(conn.execute(q.order_by(h.c.history_id)).all(), FINDING_HISTORY_READ)
+    for c in ("run_end_at", "acquired_at"):
+        df[c] = pd.to_datetime(df[c], utc=True)
+    df["tier"] = df["tier"].astype("int64")
+    return df
+
+
+MISSED_CASE_READ = ["missed_id", "patient_id", "ecg_id", "screen", "recorded_at"]
+
+
+def read_missed_cases(engine: Engine) -> pd.DataFrame:
+    """Every recorded missed case (MISSED_CASE_READ: role and note left out)."""
+    m = missed_case
+    with engine.connect() as conn:
+        df = _frame(conn.execute(select(*[m.c[c] for c in MISSED_CASE_READ]).order_by(m.c.missed_id)).all(),
+                    MISSED_CASE_READ)
+    df["recorded_at"] = pd.to_datetime(df["recorded_at"], utc=True)
+    return df
+
+
 # ---------------------------------------------------------------------------------------------
 # Upsert and rank
 # ---------------------------------------------------------------------------------------------
