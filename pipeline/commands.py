@@ -47,7 +47,7 @@ def add_store_options(p: argparse.ArgumentParser, required: bool = False) -> Non
 
 
 def register(subparsers) -> None:
-    """Add the review, yield, export and show sub-commands."""
+    """Add the review, yield, audit, replay, export, show and serve sub-commands."""
     p = subparsers.add_parser("review", help="record a review outcome for an item, or import a CSV of them",
                               description="Record a review outcome (closes the item) or import outcomes "
                                           "exported by staff tools (CSV columns: item_id, reviewed_at, "
@@ -377,9 +377,8 @@ def handle_replay(args) -> int:
 
     from cardiosieve.pipeline import replayview
     from cardiosieve.pipeline.config import load_settings
-    from cardiosieve.pipeline.replay import parse_sweep, read_whatif, replay
+    from cardiosieve.pipeline.replay import alternative_settings, parse_sweep, read_whatif, replay
     from cardiosieve.pipeline.run import RunError, parse_instant, site_rules
-    from cardiosieve.pipeline.replay import alternative_settings
 
     if args.format == "html" and not args.output:
         return _fail("replay: --format html writes one file: give --output FILE")

@@ -104,7 +104,8 @@ def _table(df: pd.DataFrame, index: bool = False) -> str:
     cols = ([df.index.name or ""] if index else []) + [str(c) for c in df.columns]
     head = "".join(f"<th>{html.escape(c)}</th>" for c in cols)
     body = []
-    for key, row in zip(df.index, df.itertuples(index=False)):     # report tables: a few dozen rows
+    # Report tables: a few dozen rows (the item rows: the items that changed, not the period's ECGs).
+    for key, row in zip(df.index, df.itertuples(index=False)):
         cells = ([f"<th>{html.escape(str(key))}</th>"] if index else []) + \
                 [f"<td>{html.escape(_fmt(v))}</td>" for v in row]
         body.append("<tr>" + "".join(cells) + "</tr>")

@@ -147,6 +147,32 @@ def test_the_dag_stage_path_writes_the_archive_and_a_rerun_replaces_its_own_fold
     assert [p.name for p in (out / ARCHIVE_DIR).iterdir()] == [first["path"].name]   # nothing left aside
 
 
+def test_an_ecg_in_several_archive_folders_comes_from_the_one_written_last(history, tmp_path):
+    # The first night's archived rows written twice: as a 3-day backfill chunk with E2's potassium
+    # at 5.7 mmol/L, and as a rerun of the night with 6.2 (as if a corrected result had arrived).
+    from cardiosieve.pipeline.archive import archive_chunk
+    from cardiosieve.pipeline.replay import read_period
+    from cardiosieve.pipeline.run import interval
+
+    (night,) = [f for f in archive_folders(history["out"]) if f["lo"].day == 2]
+    aligned = pd.read_parquet(night["path"] / ARCHIVE_ALIGNED)
+    leads = pd.read_parquet(night["path"] / ARCHIVE_LEADS)
+    corrected = aligned.assign(k_mmol_l=aligned["k_mmol_l"].where(aligned["ecg_id"] != "E2", 6.2))
+    lo, hi = interval(NIGHTS[0][0], NIGHTS[2][1])
+
+    def k_of_e2(first, second):
+        out = tmp_path / f"out-{len(list(tmp_path.iterdir()))}"
+        archive_chunk(out, lo, hi, first, leads)                       # the backfill chunk [2, 5)
+        archive_chunk(out, *interval(*NIGHTS[0]), second, leads)       # the night [2, 3), later
+        period = read_period(out, None, lo, hi, load_settings(None))
+        assert period.uncovered == [] and sorted(period.aligned["ecg_id"]) == ["E1", "E2", "E3"]
+        assert len(period.leads) == 3 * 12                             # one copy of each ECG's leads
+        return float(period.aligned.set_index("ecg_id").loc["E2", "k_mmol_l"])
+
+    assert k_of_e2(aligned, corrected) == 6.2
+    assert k_of_e2(corrected, aligned) == 5.7
+
+
 # --- (i) the shipped rules reproduce the live findings ----------------------------------------------
 def test_an_empty_whatif_reproduces_the_live_findings_from_the_archive_and_from_the_lake(history, tmp_path):
     live = _live_latest(history["out"])
