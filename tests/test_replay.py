@@ -350,3 +350,39 @@ def test_text_and_csv_carry_the_caution(history, tmp_path, capsys):
     assert set(table["table"]) == {"screens", "tiers"} and table["caution"].eq(CAUTION).all()
     hk = table[(table["table"] == "screens") & (table["screen"] == "hyperkalemia")].iloc[0]
     assert (hk["reviewed_lost_real"], hk["reviewed_lost_not_real"]) == (1, 1)
+
+
+# --- pieces ------------------------------------------------------------------------------------------
+def test_a_sweep_includes_its_upper_bound_despite_float_steps():
+    from cardiosieve.pipeline.replay import parse_sweep
+    from cardiosieve.screens.criteria import load_rules
+
+    rules = load_rules()
+    # (0.3 - 0.1) / 0.1 is 1.9999999999999998 in binary floating point: still three values.
+    assert parse_sweep("hyperkalemia.k_mild=0.1:0.3:0.1", rules).values == (0.1, 0.2, 0.3)
+    assert parse_sweep("st_deviation.std_reciprocal=-100:-50:25", rules).values == (-100.0, -75.0, -50.0)
+    assert len(parse_sweep("long_qt.qtc_high_risk=400:599:1", rules).values) == 200     # the cap, exactly
+    one = parse_sweep("long_qt.qtc_high_risk=480:480:5", rules)
+    assert (one.values, one.unit) == ((480.0,), "ms")
+
+
+def test_the_parts_of_a_period_no_archive_folder_covers():
+    from cardiosieve.pipeline.replay import uncovered_parts
+
+    def t(day):
+        return pd.Timestamp(f"2026-11-{day:02d}", tz="UTC")
+
+    covered = [(t(3), t(5)), (t(4), t(6)), (t(8), t(9)), (t(20), t(25))]
+    assert uncovered_parts(t(1), t(10), covered) == [(t(1), t(3)), (t(6), t(8)), (t(9), t(10))]
+    assert uncovered_parts(t(3), t(6), covered) == []
+    assert uncovered_parts(t(1), t(2), []) == [(t(1), t(2))]
+
+
+def test_the_sweep_plot_marks_a_value_with_no_reviewed_item_as_unknown():
+    from cardiosieve.pipeline.plots import svg_sweep
+
+    sweep = pd.DataFrame({"screen": "long_qt", "key": "qtc_high_risk", "value": [480.0, 500.0], "unit": "ms",
+                          "findings": [3, 2], "items": [3, 2], "items_per_day": [1.0, 0.5], "reviewed_flagged": [2, 0],
+                          "ppv": [0.5, float("nan")], "ppv_low": [0.09, float("nan")], "ppv_high": [0.91, float("nan")]})
+    svg = svg_sweep(sweep)
+    assert "PPV unknown (none reviewed)" in svg and "95 % Wilson interval" in svg and 'href="http' not in svg
