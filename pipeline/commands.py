@@ -111,7 +111,7 @@ def register(subparsers) -> None:
                                           "--until) from the aligned archive (OUT/aligned_history; the lake for "
                                           "days it does not cover) under the site's rules and under the site's "
                                           "rules plus the overrides of --rules, and compare findings, would-be "
-                                          "items per day, the reviewed items kept, lost and gained, PPV (95 %% "
+                                          "items per day, the reviewed items kept, lost and gained, PPV (95 % "
                                           "Wilson) and recorded missed cases. Counts only, unless --items. "
                                           "Reads the store, never writes it. See docs/replay.md.")
     p.add_argument("--out", required=True, metavar="OUT", help="output folder: its aligned archive and, without "
