@@ -1,4 +1,4 @@
-"""Worklist sub-commands of the cardiosieve CLI: review, yield, export, show, serve.
+"""Worklist sub-commands of the cardiosieve CLI: review, yield, audit, replay, export, show, serve.
 
 `register(subparsers)` adds them to the CLI's argparse sub-parsers; each sets `handler` (also as
 `func`), a function taking the parsed arguments and returning an exit code (pipeline.cli):
@@ -32,7 +32,8 @@ STATUS_HELP = "open, reopened, explained, closed"
 TIERS = (1, 2, 3, 4)
 AUDIT_FORMATS = ("table", "json", "csv", "parquet", "html")
 FORMATS = ("text", "json", "csv")
-YIELD_FORMATS = ("table", "text", "json", "csv")   # text: the name of table before, still taken
+YIELD_FORMATS = ("table", "text", "json", "csv")
+REPLAY_FORMATS = ("table", "json", "csv", "html")   # text: the name of table before, still taken
 # Kept in step with pipeline.store.YIELD_GROUPS (tests/test_history.py checks it).
 YIELD_GROUPS = ("tier", "rule_version")
 TEXT_WIDTH = (60, 110)       # text output wraps at the terminal's width, within these bounds
@@ -47,7 +48,7 @@ def add_store_options(p: argparse.ArgumentParser, required: bool = False) -> Non
 
 
 def register(subparsers) -> None:
-    """Add the review, yield, export and show sub-commands."""
+    """Add the review, yield, audit, replay, export, show and serve sub-commands."""
     p = subparsers.add_parser("review", help="record a review outcome for an item, or import a CSV of them",
                               description="Record a review outcome (closes the item) or import outcomes "
                                           "exported by staff tools (CSV columns: item_id, reviewed_at, "
@@ -116,6 +117,34 @@ def register(subparsers) -> None:
                         "folder; html: one offline file with plots (--output FILE)")
     p.add_argument("--output", "-o", metavar="PATH", help="the folder (csv, parquet) or file (html) to write")
     p.set_defaults(handler=handle_audit, func=handle_audit)
+
+    p = subparsers.add_parser("replay", help="threshold what-if: re-screen aligned history under other "
+                                             "thresholds, against the reviews (never touches the worklist)",
+                              description="For quality improvement: re-screen the ECGs acquired in [--since, "
+                                          "--until) from the aligned archive (OUT/aligned_history; the lake for "
+                                          "days it does not cover) under the site's rules and under the site's "
+                                          "rules plus the overrides of --rules, and compare findings, would-be "
+                                          "items per day, the reviewed items kept, lost and gained, PPV (95 % "
+                                          "Wilson) and recorded missed cases. Counts only, unless --items. "
+                                          "Reads the store, never writes it. See docs/replay.md.")
+    p.add_argument("--out", required=True, metavar="OUT", help="output folder: its aligned archive and, without "
+                                                               "--db, its worklist.sqlite")
+    p.add_argument("--lake", required=True, metavar="LAKE", help="the lake, for days the archive does not cover")
+    p.add_argument("--config", metavar="TOML", help="site configuration (its [rules.*] are the current rules)")
+    p.add_argument("--db", metavar="URL", help="SQLAlchemy URL of the worklist store (default: OUT/worklist.sqlite)")
+    p.add_argument("--since", required=True, metavar="DATE", help="first instant of the period (UTC), e.g. 2026-01-01")
+    p.add_argument("--until", metavar="DATE", help="end of the period, excluded (UTC; default: now)")
+    p.add_argument("--rules", required=True, metavar="WHATIF_TOML",
+                   help="the alternative: [rules.<screen>] tables of threshold overrides, as in the site config")
+    p.add_argument("--sweep", metavar="SCREEN.KEY=LO:HI:STEP",
+                   help="also re-screen that screen with the threshold at each value LO, LO+STEP, ..., HI")
+    p.add_argument("--items", action="store_true",
+                   help="also list item-level rows (item, ECG and patient ids gained or lost): identifies patients")
+    p.add_argument("--format", default="table", choices=REPLAY_FORMATS, help="table (default), json, csv or html "
+                                                                             "(html needs --output)")
+    p.add_argument("--output", "-o", metavar="FILE", help="write the report to FILE (owner-only) instead of "
+                                                          "standard output")
+    p.set_defaults(handler=handle_replay, func=handle_replay)
 
     p = subparsers.add_parser("export", help="write the stored worklist as CSV for spreadsheets")
     add_store_options(p)
@@ -318,7 +347,7 @@ def handle_audit(args) -> int:
     from cardiosieve.pipeline import audit, followup
     from cardiosieve.pipeline.config import load_settings
     from cardiosieve.pipeline.run import RunError, parse_instant
-    from cardiosieve.pipeline.store import read_history, read_items_between, read_reviews, yield_table
+    from cardiosieve.pipeline.store import read_finding_history, read_items_between, read_reviews, yield_table
 
     url = _url(args)
     if url is None:
@@ -344,7 +373,7 @@ def handle_audit(args) -> int:
         reviews = read_reviews(engine, items["item_id"])
         by_version = yield_table(engine, since=since, until=until, by="rule_version")
         if args.lake:
-            findings = followup.latest_findings(read_history(engine, since, until),
+            findings = followup.latest_findings(read_finding_history(engine, since, until, with_texts=True),
                                                 read_items_between(engine, since, until, column="ecg_at"))
     finally:
         engine.dispose()
@@ -465,6 +494,63 @@ def _audit_html(report: dict, per_item, targets: dict, period: str, settings) ->
              "team's own review process under local protocols, never a verdict on care: the follow-up may "
              "have happened outside the lake's feeds."]
     return report_page("Missed-findings audit", intro, sections)
+
+
+def handle_replay(args) -> int:
+    import pandas as pd
+
+    from cardiosieve.pipeline import replayview
+    from cardiosieve.pipeline.config import load_settings
+    from cardiosieve.pipeline.replay import alternative_settings, parse_sweep, read_whatif, replay
+    from cardiosieve.pipeline.run import RunError, parse_instant, site_rules
+
+    if args.format == "html" and not args.output:
+        return _fail("replay: --format html writes one file: give --output FILE")
+    now = pd.Timestamp.now(tz="UTC")
+    try:                                   # a date without offset is UTC, as for `run`
+        since = parse_instant(args.since, "since")
+        until = parse_instant(args.until, "until") if args.until else now
+    except RunError:
+        return _fail("replay: --since/--until: not a date (ISO 8601, e.g. 2026-11-01)")
+    if until <= since:
+        return _fail("replay: the period is empty (--until is not after --since)")
+    if not Path(args.out).is_dir():
+        return _fail(f"replay: no output folder {args.out}")
+    if not Path(args.lake).is_dir():
+        return _fail(f"replay: no lake folder {args.lake}")
+    settings = load_settings(args.config)
+    overrides = read_whatif(args.rules)
+    label = Path(args.rules).name
+    sweep = None
+    if args.sweep:
+        sweep = parse_sweep(args.sweep, site_rules(alternative_settings(settings, overrides, label)))
+    url = _url(args)
+    if url is None:
+        return EXIT_BAD_INPUT
+    engine = _store(url)
+    try:
+        report = replay(args.out, args.lake, since, until, settings, overrides, label, engine,
+                        sweep=sweep, with_items=args.items)
+    finally:
+        engine.dispose()
+    if args.format == "json":
+        text = replayview.as_json(report)
+    elif args.format == "csv":
+        text = replayview.as_csv(report)
+    elif args.format == "html":
+        text = replayview.as_html(report, now.strftime("%Y-%m-%d %H:%M UTC"))
+    else:
+        text = replayview.as_text(report)
+    if args.output:
+        from cardiosieve.pipeline.files import write_text_atomic
+        try:
+            write_text_atomic(text, args.output)
+        except FileNotFoundError:
+            return _fail(f"replay: --output {args.output}: its folder does not exist")
+        print(f"wrote the replay report to {args.output}", file=sys.stderr)
+    else:
+        sys.stdout.write(text)
+    return EXIT_OK
 
 
 def _num(x, fmt: str) -> str:

@@ -9,6 +9,7 @@ in a subprocess with each point in turn. The points, in the order a run passes t
     after_quality      the quality gate's verdict has come back (its worker runs beside the
                        stages above: pipeline/gateworker.py)
     after_commit       the worklist store has committed tonight's items
+    after_archive      the chunk's aligned table and leads are in OUT/aligned_history/ (archive.py)
     before_switch      the run's folder is complete, not yet the published one
     after_switch       the new state is published, the old runs not yet pruned
 """
@@ -17,8 +18,8 @@ from __future__ import annotations
 import os
 import signal
 
-POINTS = ("after_load", "after_align", "after_screen", "after_quality", "after_commit", "before_switch",
-          "after_switch")
+POINTS = ("after_load", "after_align", "after_screen", "after_quality", "after_commit", "after_archive",
+          "before_switch", "after_switch")
 ENV = "CARDIOSIEVE_KILL_AT"
 
 

@@ -49,7 +49,8 @@ button { font-size: 1rem; padding: .35rem .9rem; }
 _BASE = """<!doctype html>
 <html lang="en"><head><meta charset="utf-8"><meta name="viewport" content="width=device-width, initial-scale=1">
 <title>{{ title }} - {{ app_name }}</title>
-{% if inline_css %}<style>{{ css }}</style>{% else %}<link rel="stylesheet" href="/style.css">{% endif %}
+{% if inline_css %}<meta http-equiv="Content-Security-Policy" content="default-src 'none'; img-src data:; style-src 'unsafe-inline'">
+<style>{{ css }}</style>{% else %}<link rel="stylesheet" href="/style.css">{% endif %}
 </head><body>
 <a class="skip" href="#main">Skip to content</a>
 <p class="caution" role="note">{{ caution }}</p>

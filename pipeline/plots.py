@@ -412,3 +412,37 @@ def svg_ppv_by_version(yield_rows: pd.DataFrame) -> str:
     ax.set_ylabel("PPV (95 % Wilson interval)", fontsize=8)
     ax.tick_params(labelsize=7)
     return _svg(fig)
+
+
+# ---------------------------------------------------------------------------------------------
+# Replay sweep (`cardiosieve replay --sweep`, pipeline/replay.py)
+# ---------------------------------------------------------------------------------------------
+def svg_sweep(sweep: pd.DataFrame) -> str:
+    """Workload (would-be items per day) against PPV over reviewed items, one point per swept
+    value with its 95 % Wilson interval as a vertical bar and the value written beside it. A value
+    with no reviewed item has no PPV: it is drawn at the bottom as a hollow mark, labelled unknown."""
+    fig = _figure(8.5, 3.6)
+    ax = fig.add_subplot()
+    if len(sweep):
+        x = sweep["items_per_day"].to_numpy(dtype=float)
+        ppv = sweep["ppv"].to_numpy(dtype=float)
+        low, high = sweep["ppv_low"].to_numpy(dtype=float), sweep["ppv_high"].to_numpy(dtype=float)
+        known = ~np.isnan(ppv)
+        ax.plot(x[known], ppv[known], color="#3b3b3b", marker="o", linewidth=1, label="PPV")
+        ax.vlines(x[known], low[known], high[known], color="#3b3b3b", linewidth=2, alpha=0.5,
+                  label="95 % Wilson interval")
+        if (~known).any():
+            ax.plot(x[~known], np.zeros(int((~known).sum())), linestyle="none", marker="o",
+                    markerfacecolor="none", color="#b00020", label="PPV unknown (none reviewed)")
+        unit = str(sweep["unit"].iloc[0])
+        for xi, yi, v in zip(x, np.where(known, ppv, 0.0), sweep["value"]):
+            ax.annotate(f"{v:g}", (xi, yi), textcoords="offset points", xytext=(4, 4), fontsize=6)
+        ax.set_title(f"{sweep['screen'].iloc[0]}.{sweep['key'].iloc[0]} ({unit}) swept", fontsize=8)
+    else:
+        ax.text(0.5, 0.5, "no values swept", transform=ax.transAxes, ha="center", fontsize=8)
+    ax.set_xlabel("would-be items per day (workload)")
+    ax.set_ylabel("PPV over reviewed items")
+    ax.set_ylim(-0.05, 1.05)
+    ax.tick_params(labelsize=7)
+    _legend(ax, fontsize=7, loc="best")
+    return _svg(fig)

@@ -10,6 +10,7 @@ Layout of OUT (see docs/operations.md):
     OUT/worklist.sqlite          the worklist store (the default SQLite one)
     OUT/_stage/<interval>/       the stages' working files (checkpoints between DAG tasks)
     OUT/gate_stopped/            the quality report of a run the gate stopped, until a run publishes
+    OUT/aligned_history/<chunk>/ every chunk's aligned table and leads, for replay (pipeline/archive.py)
 
 `publish` builds the run's folder under a hidden name, flushes it to disk, renames it into
 runs/ and then replaces OUT/current with one atomic rename of a new link. A reader opening
@@ -87,8 +88,11 @@ def clean_leftovers(out) -> int:
     gone); returns how many were removed. Call it under the run lock."""
     out = Path(out)
     removed = 0
+    from cardiosieve.pipeline.archive import ARCHIVE_DIR
+
     candidates = [*out.glob(".*.tmp"), *out.glob(".*.link"), *out.glob(f"{STAGE_DIR}/*/.*.tmp"),
-                  *out.glob(f"{RUNS_DIR}/*/.*.tmp"), *out.glob(f"{RUNS_DIR}/{BUILDING_PREFIX}*")]
+                  *out.glob(f"{RUNS_DIR}/*/.*.tmp"), *out.glob(f"{RUNS_DIR}/{BUILDING_PREFIX}*"),
+                  *out.glob(f"{ARCHIVE_DIR}/*/.*.tmp"), *out.glob(f"{ARCHIVE_DIR}/{BUILDING_PREFIX}*")]
     for path in dict.fromkeys(candidates):
         if _owner_alive(path):
             continue

@@ -18,6 +18,7 @@ import pandas as pd
 
 from cardiosieve.pipeline import CAUTION
 from cardiosieve.pipeline import contract as c
+from cardiosieve.pipeline.archive import archive_chunk
 from cardiosieve.pipeline.config import Settings, load_settings
 from cardiosieve.pipeline.errors import BadInputError
 from cardiosieve.pipeline.faults import fault_point
@@ -385,6 +386,16 @@ def site_rules(settings: Settings):
     return load_rules(overrides or None, source_name=settings.source)
 
 
+def screen_leads(d: Path) -> pd.DataFrame:
+    """The lead rows the screens read for a stage folder's aligned ECGs: the night's checked leads
+    and the chosen prior ECGs' leads (what stage_screen passes to run_screens; the aligned
+    archive keeps the same, pipeline/archive.py)."""
+    from cardiosieve.pipeline.normalise import empty_table
+
+    leads = [x for x in (read_stage(d, "ecg_lead"), read_stage(d, "prior_lead")) if x is not None]
+    return pd.concat(leads, ignore_index=True) if leads else empty_table(c.ECG_LEAD)
+
+
 def stage_screen(out, start, end, config=None, settings: Settings | None = None) -> dict:
     """Run every registered screen over the aligned night; write findings.parquet and each
     screen's criterion table, criteria_<screen>.parquet (one row per aligned ECG)."""
@@ -394,10 +405,7 @@ def stage_screen(out, start, end, config=None, settings: Settings | None = None)
     lo, hi = interval(start, end)
     d = stage_dir(out, lo, hi)
     rules = site_rules(settings)
-    from cardiosieve.pipeline.normalise import empty_table
-    leads = [x for x in (read_stage(d, "ecg_lead"), read_stage(d, "prior_lead")) if x is not None]
-    leads = pd.concat(leads, ignore_index=True) if leads else empty_table(c.ECG_LEAD)
-    findings, tables = run_screens(pd.read_parquet(d / "aligned.parquet"), leads, rules, with_criteria=True)
+    findings, tables = run_screens(pd.read_parquet(d / "aligned.parquet"), screen_leads(d), rules, with_criteria=True)
     write_parquet_atomic(findings, d / "findings.parquet")
     # Each screen's criterion table (screens/_table.py), for analysts to filter by any criterion.
     for name in rules.screens:
@@ -457,6 +465,10 @@ def stage_worklist(out, start, end, config=None, db=None, settings: Settings | N
                                      folded=folded)
         db_counts = store.upsert_items(engine, items, history=worklist.history_rows(folded, run_id, hi))
         fault_point("after_commit")
+        # What the screens read, kept for `cardiosieve replay` (pipeline/archive.py): written
+        # after the commit, so that the archive never holds a chunk the store lacks.
+        archive_chunk(out, lo, hi, aligned, screen_leads(d))
+        fault_point("after_archive")
         if not write:
             (d / "worklist.parquet").unlink(missing_ok=True)   # none from an earlier run stays
             return {"items_tonight": int(len(items)), "db_counts": db_counts}

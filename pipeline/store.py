@@ -659,17 +659,42 @@ def read_items_between(engine: Engine, since, until, column: str = "first_flagge
         return _items(conn.execute(q).all())
 
 
-def read_history(engine: Engine, since, until) -> pd.DataFrame:
-    """finding_history rows (HISTORY_COLUMNS) of the ECGs acquired in [since, until), oldest run
-    first; run_end_at and acquired_at in UTC."""
+FINDING_HISTORY_READ = ["history_id", "run_id", "run_end_at", "item_id", "screen", "ecg_id", "patient_id",
+                        "acquired_at", "tier", "rule_version"]
+
+
+FINDING_HISTORY_TEXTS = ["summary", "evidence", "caveats", "territories", "score_parts"]
+
+
+def read_finding_history(engine: Engine, since=None, until=None, with_texts: bool = False) -> pd.DataFrame:
+    """finding_history rows (FINDING_HISTORY_READ, and FINDING_HISTORY_TEXTS when `with_texts`:
+    the audit's follow-up rules read the evidence) of ECGs acquired in [since, until) (either
+    bound may be None), in the order they were appended; times in UTC."""
     h = finding_history
-    q = (select(*[h.c[c] for c in HISTORY_COLUMNS])
-         .where(h.c.acquired_at >= _utc_bound(since), h.c.acquired_at < _utc_bound(until))
-         .order_by(h.c.run_end_at, h.c.history_id))
+    columns = FINDING_HISTORY_READ + (FINDING_HISTORY_TEXTS if with_texts else [])
+    q = select(*[h.c[c] for c in columns])
+    if since is not None:
+        q = q.where(h.c.acquired_at >= _utc_bound(since))
+    if until is not None:
+        q = q.where(h.c.acquired_at < _utc_bound(until))
     with engine.connect() as conn:
-        df = _frame(conn.execute(q).all(), HISTORY_COLUMNS)
+        df = _frame(conn.execute(q.order_by(h.c.history_id)).all(), columns)
     for c in ("run_end_at", "acquired_at"):
         df[c] = pd.to_datetime(df[c], utc=True)
+    df["tier"] = df["tier"].astype("int64")
+    return df
+
+
+MISSED_CASE_READ = ["missed_id", "patient_id", "ecg_id", "screen", "recorded_at"]
+
+
+def read_missed_cases(engine: Engine) -> pd.DataFrame:
+    """Every recorded missed case (MISSED_CASE_READ: role and note left out)."""
+    m = missed_case
+    with engine.connect() as conn:
+        df = _frame(conn.execute(select(*[m.c[c] for c in MISSED_CASE_READ]).order_by(m.c.missed_id)).all(),
+                    MISSED_CASE_READ)
+    df["recorded_at"] = pd.to_datetime(df["recorded_at"], utc=True)
     return df
 
 

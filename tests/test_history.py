@@ -351,12 +351,13 @@ def test_review_missed_records_a_case_from_the_command_line(tmp_path, capsys):
 
 
 def test_the_audits_period_readers_select_in_sql_on_both_dialects(engine):
-    from cardiosieve.pipeline.store import read_history, read_items_between
+    from cardiosieve.pipeline.store import read_finding_history, read_items_between
 
     night_with_history(engine, NIGHT)         # ECGs of 2026-03-01 10:00-12:00, flagged at NIGHT1
-    h = read_history(engine, "2026-03-01T10:30:00Z", "2026-03-01T12:00:00Z")
+    h = read_finding_history(engine, "2026-03-01T10:30:00Z", "2026-03-01T12:00:00Z", with_texts=True)
     assert h["ecg_id"].tolist() == ["e3"]     # 11:00 in; 10:00 before the period; 12:00 is its open end
     assert str(h["acquired_at"].dt.tz) == "UTC" and str(h["run_end_at"].dt.tz) == "UTC"
+    assert "rule_version" in json.loads(h["evidence"].iloc[0])         # the texts, with_texts
     # The folded e1 + e2 item shows its most severe finding's ECG, e1 at 10:00.
     assert read_items_between(engine, "2026-03-01T10:01:00Z", "2026-03-02", column="ecg_at")["ecg_id"].tolist() \
         == ["e3"]
