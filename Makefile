@@ -14,7 +14,7 @@ install: $(STAMP)
 $(STAMP): pyproject.toml constraints.txt
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
 	$(BIN)/python -m pip install --quiet --upgrade pip 2>&1 | { grep -v "^WARNING: Location" || true; }
-	$(BIN)/python -m pip install --quiet -c constraints.txt -e '.[test,scheduler]' 2>&1 | { grep -v "^WARNING: Location" || true; }
+	$(BIN)/python -m pip install --quiet -c constraints.txt -e '.[test,scheduler,spark]' 2>&1 | { grep -v "^WARNING: Location" || true; }
 	$(BIN)/python -c "import pandas, pyarrow, scipy, sqlalchemy, pytest, duckdb"
 	touch $(STAMP)
 
@@ -34,7 +34,7 @@ PY312 ?= python3.12
 test-py312:
 	test -x .venv312/bin/python || $(PY312) -m venv .venv312
 	.venv312/bin/python -m pip install --quiet --upgrade pip 2>&1 | { grep -v "^WARNING: Location" || true; }
-	.venv312/bin/python -m pip install --quiet -c constraints.txt -e '.[test,scheduler]' 2>&1 | { grep -v "^WARNING: Location" || true; }
+	.venv312/bin/python -m pip install --quiet -c constraints.txt -e '.[test,scheduler,spark]' 2>&1 | { grep -v "^WARNING: Location" || true; }
 	.venv312/bin/python -m pytest
 
 bench: install

@@ -58,6 +58,26 @@ def build_parser() -> argparse.ArgumentParser:
                           "(exit 2) before it starts when a day of [start, end) has not landed")
     run.set_defaults(handler=_cmd_run)
 
+    back = sub.add_parser("backfill", help="screen a long past interval, on this machine or on Apache Spark",
+                          description="The job of `run` over a long past interval [--start, --end), in chunks "
+                                      "of the lake's ECG rows, with the same outputs. --engine spark spreads the "
+                                      "rows over Spark executors by patient (needs the spark extra, pip install "
+                                      "'cardiosieve[spark]', and Java 17); see docs/scale-out.md.")
+    _lake_args(back)
+    back.add_argument("--out", required=True, help="output folder")
+    back.add_argument("--start", required=True, help="first instant screened, ISO 8601")
+    back.add_argument("--end", required=True, help="end of the interval, excluded, ISO 8601")
+    back.add_argument("--db", help="SQLAlchemy URL of the worklist database (default: sqlite at OUT/worklist.sqlite)")
+    back.add_argument("--engine", choices=("local", "spark"), default="local",
+                      help="local: this process (as `run`); spark: Apache Spark (default: local)")
+    back.add_argument("--master", default="local[2]",
+                      help="Spark master URL with --engine spark, e.g. local[4] or spark://host:7077 "
+                           "(default: local[2])")
+    back.add_argument("--buckets", type=int, default=8,
+                      help="patient buckets with --engine spark: Spark tasks, each with every row of its "
+                           "patients (default: 8)")
+    back.set_defaults(handler=_cmd_backfill)
+
     val = sub.add_parser("validate", help="check the lake against the contract and report rejects",
                          description="Read the lake (or only [--start, --end)) against the data contract; "
                                      "print counts of accepted and rejected rows by reason.",
@@ -183,6 +203,21 @@ def _cmd_run(args) -> int:
     return EXIT_OK
 
 
+def _cmd_backfill(args) -> int:
+    if args.engine == "local":
+        return _cmd_run(argparse.Namespace(**vars(args), landing_marker=""))
+    try:
+        import pyspark  # noqa: F401
+    except ImportError:
+        raise BadInputError("--engine spark needs pyspark: pip install 'cardiosieve[spark]'") from None
+    from cardiosieve.pipeline.sparkengine import run_spark_interval
+    summary = run_spark_interval(args.lake, args.out, args.start, args.end, config=args.config, db=args.db,
+                                 master=args.master, buckets=args.buckets)
+    if not getattr(args, "quiet", False):
+        print(format_summary(summary))
+    return EXIT_OK
+
+
 def _cmd_validate(args) -> int:
     from cardiosieve.pipeline.validate import validate_lake
     result = validate_lake(args.lake, config=args.config, start=args.start, end=args.end, out=args.out)
@@ -228,6 +263,9 @@ def format_summary(s: dict) -> str:
         lines.append("  worklist items by screen: " +
                      ", ".join(f"{k} {v}" for k, v in sorted(w.get("by_screen", {}).items())))
         lines.append(f"  database: {w.get('db_counts', {})}")
+    if s.get("engine"):
+        e = s["engine"]
+        lines.append(f"  engine: {e['name']} (master {e['master']}, {e['buckets']} patient buckets)")
     if s.get("seconds"):
         lines.append("  seconds: " + ", ".join(f"{k} {v:.2f}" for k, v in s["seconds"].items()))
     for name, path in s.get("outputs", {}).items():

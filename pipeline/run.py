@@ -300,15 +300,18 @@ def stage_quality(lake, out, start, end, config=None, settings: Settings | None 
     return summary
 
 
-def stage_row_checks(lake, out, start, end, config=None, settings: Settings | None = None) -> dict:
+def stage_row_checks(lake, out, start, end, config=None, settings: Settings | None = None,
+                     always: bool = False) -> dict:
     """The gate's row decisions only (no Great Expectations): the checked tables and the
     rejects, for alignment to go on while the verdict is computed elsewhere. Returns whether
-    the row checks alone already fail the gate (the verdict will say why)."""
+    the row checks alone already fail the gate (the verdict will say why). `always`: write the
+    checked tables even then (the Spark engine's buckets, whose verdict the driver decides over
+    every bucket together: pipeline/sparkengine.py)."""
     settings = settings or load_settings(config)
     lo, hi = interval(start, end)
     d = stage_dir(out, lo, hi)
     result = _quality_result(lake, d, lo, hi, settings, verdict=False)
-    _write_checked(d, result)
+    _write_checked(d, result, always=always)
     return {"passed": result.passed, "rejected": int(len(result.rejects))}
 
 
@@ -360,10 +363,11 @@ def _report_or_stop(out, d: Path, result) -> dict:
             "rejects_by_check": {k: int(v) for k, v in result.rejects.groupby("reason").size().items()}}
 
 
-def _write_checked(d: Path, result) -> None:
-    """The tables the gate let through and its rejects, for alignment (nothing when it failed).
-    A table the gate removed no row from keeps its loaded file: `read_stage` reads that."""
-    if result.passed:
+def _write_checked(d: Path, result, always: bool = False) -> None:
+    """The tables the gate let through and its rejects, for alignment (nothing when it failed,
+    unless `always`). A table the gate removed no row from keeps its loaded file: `read_stage`
+    reads that."""
+    if result.passed or always:
         for n, df in result.clean.items():
             checked = d / f"{n}.checked.parquet"
             if len(df) == result.rows_in.get(n, -1):

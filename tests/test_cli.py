@@ -13,7 +13,7 @@ ARGS = ["--start", "2026-11-29", "--end", "2026-11-30"]
 
 def test_help_imports_no_heavy_library():
     code = ("import sys, cardiosieve.pipeline.cli as c; c.build_parser().format_help(); "
-            "print(sorted(m for m in ('pandas', 'pyarrow', 'numpy', 'sqlalchemy', 'airflow', 'great_expectations', 'matplotlib', 'starlette', 'uvicorn', 'jinja2') if m in sys.modules))")
+            "print(sorted(m for m in ('pandas', 'pyarrow', 'numpy', 'sqlalchemy', 'airflow', 'great_expectations', 'matplotlib', 'starlette', 'uvicorn', 'jinja2', 'pyspark') if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
     assert out.strip() == "[]"
 
@@ -27,6 +27,17 @@ def test_nightly_run_without_gate_imports_no_statistics_or_scheduler(tmp_path):
             "print(sorted(m for m in ('scipy.stats', 'airflow', 'great_expectations', 'duckdb') if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
     assert out.strip().splitlines()[-1] == "[]"
+
+
+def test_the_nightly_command_with_its_gate_never_imports_spark(tmp_path):
+    """pyspark is for `backfill --engine spark` only (pipeline/sparkengine.py)."""
+    lake = write_lake(tmp_path / "lake")
+    code = ("import sys; from cardiosieve.pipeline.cli import main; "
+            f"rc = main(['run', '--lake', {str(lake)!r}, '--out', {str(tmp_path / 'out')!r}, '--start', '2026-11-29', "
+            "'--end', '2026-11-30', '--quiet']); "
+            "print(rc, sorted(m for m in ('pyspark', 'py4j') if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    assert out.strip().splitlines()[-1] == "0 []"
 
 
 def test_run_succeeds_and_prints_counts_not_identifiers(tmp_path, capsys):
